@@ -1,0 +1,232 @@
+"""Starting points for descent runs.
+
+Four ways to choose where runs begin, each returning :class:`Starts` (an
+``(S, n)`` array of flat vectors plus a JSON-ready spec for Settings):
+
+* :func:`explicit_starts`: the user's own list of parameter pytrees or vectors;
+* :func:`grid_starts`: a regular grid on a plane (for basin maps);
+* :func:`random_starts`: seeded Gaussian draws around a point;
+* :func:`initializer_starts`: draws from the user's own initialiser
+  ``init(key) -> params``, so initialisation schemes can be compared.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import jax
+import numpy as np
+
+from .errors import ParameterError
+from .planes import Plane, _check_seed
+from .problem import Problem, loss_name
+from .surface import _ranges, _resolution
+
+__all__ = [
+    "MAX_STARTS",
+    "Starts",
+    "as_starts",
+    "explicit_starts",
+    "grid_starts",
+    "initializer_starts",
+    "random_starts",
+    "starts_from_spec",
+]
+
+MAX_STARTS = 1_000_000
+
+
+@dataclass(frozen=True, eq=False)
+class Starts:
+    """Starting points as flat vectors, with a record of how they were chosen."""
+
+    points: np.ndarray
+    spec: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        pts = np.asarray(self.points)
+        if pts.ndim != 2 or pts.shape[0] == 0:
+            raise ParameterError(f"starts must be a non-empty (S, n) array; got shape {pts.shape}.")
+        if not np.all(np.isfinite(pts)):
+            bad = int(np.flatnonzero(~np.isfinite(pts).all(axis=1))[0])
+            raise ParameterError(f"start {bad} contains NaN or inf; starts must be finite.")
+        pts.setflags(write=False)
+        object.__setattr__(self, "points", pts)
+
+    def __len__(self) -> int:
+        return int(self.points.shape[0])
+
+
+def explicit_starts(problem: Problem, points: Any) -> Starts:
+    """Starts given by the user: one pytree, a list of pytrees, or an ``(S, n)`` array."""
+    if isinstance(points, (np.ndarray, jax.Array)) and np.ndim(points) == 2:
+        arr = np.asarray(points)
+        if arr.shape[1] != problem.size:
+            raise ParameterError(
+                f"starts as an array must have shape (S, {problem.size}); got {arr.shape}."
+            )
+        flat = arr.astype(problem.dtype)
+    elif isinstance(points, (list, tuple)) and points and _is_list_of_starts(problem, points):
+        flat = np.stack([problem.flatten(p, what=f"start {i}") for i, p in enumerate(points)])
+    else:
+        flat = problem.flatten(points, what="start")[None, :]
+    if flat.shape[0] > MAX_STARTS:
+        raise ParameterError(f"at most {MAX_STARTS} starts are supported; got {flat.shape[0]}.")
+    spec = {"kind": "explicit", "points": [[float(x) for x in row] for row in flat]}
+    return Starts(flat, spec)
+
+
+def _is_list_of_starts(problem: Problem, points: Sequence[Any]) -> bool:
+    """Whether a list/tuple holds several starts rather than being one start."""
+    treedef = problem.flattener.treedef
+    try:
+        one = jax.tree_util.tree_structure(points)
+    except Exception:
+        return True
+    if one == treedef:
+        # The list itself has the shape of one parameter pytree.
+        return False
+    return True
+
+
+def grid_starts(plane: Plane, *, span: Any = 1.0, resolution: Any = 21) -> Starts:
+    """A ``resolution`` grid of starts on ``plane`` over ``span`` (row-major in b, then a).
+
+    The grid coordinates are kept in ``spec`` so basin maps can be drawn.
+    """
+    (a0, a1), (b0, b1) = _ranges(span)
+    ra, rb = _resolution(resolution)
+    if ra * rb > MAX_STARTS:
+        raise ParameterError(f"a {ra} x {rb} grid has more than {MAX_STARTS} starts.")
+    a = np.linspace(a0, a1, ra)
+    b = np.linspace(b0, b1, rb)
+    aa, bb = np.meshgrid(a, b)
+    pts = plane.lift(aa.ravel(), bb.ravel())
+    spec = {
+        "kind": "grid",
+        "span": [[a0, a1], [b0, b1]],
+        "resolution": [ra, rb],
+    }
+    return Starts(pts.astype(plane.origin.dtype), spec)
+
+
+def random_starts(
+    problem: Problem,
+    count: int,
+    *,
+    scale: float = 1.0,
+    seed: int = 0,
+    center: Any = None,
+) -> Starts:
+    """``count`` seeded draws ``center + scale * N(0, I)`` (center defaults to the problem's parameters).
+
+    Draws come from ``numpy.random.default_rng(seed)`` on the host, so new
+    counts never compile anything.
+    """
+    count = _check_count(count)
+    if not (np.isfinite(scale) and scale > 0):
+        raise ParameterError(f"scale must be a positive number; got {scale!r}.")
+    seed = _check_seed(seed)
+    c = problem.theta0 if center is None else problem.flatten(center, what="center")
+    noise = np.random.default_rng(seed).standard_normal((count, problem.size))
+    pts = (c.astype(np.float64) + scale * noise).astype(problem.dtype)
+    spec = {
+        "kind": "random",
+        "count": count,
+        "scale": float(scale),
+        "seed": seed,
+        "center": None if center is None else [float(x) for x in c],
+    }
+    return Starts(pts, spec)
+
+
+def initializer_starts(
+    problem: Problem,
+    init: Callable[[jax.Array], Any],
+    count: int,
+    *,
+    seed: int = 0,
+    name: str | None = None,
+) -> Starts:
+    """``count`` starts drawn from the user's initialiser ``init(key) -> params``.
+
+    Keys are ``jax.random.split(jax.random.key(seed), count)``, so the same
+    seed gives the same starts. Compare schemes by running each with the
+    same seed and count.
+    """
+    count = _check_count(count)
+    seed = _check_seed(seed)
+    if not callable(init):
+        raise ParameterError("init must be a function init(key) -> params.")
+    keys = jax.random.split(jax.random.key(seed), count)
+    rows = []
+    for i in range(count):
+        try:
+            params = init(keys[i])
+        except Exception as exc:
+            raise ParameterError(
+                f"the initialiser {loss_name(init)} raised {type(exc).__name__} for key {i}: {exc}"
+            ) from exc
+        rows.append(problem.flatten(params, what=f"initialiser output {i}"))
+    spec = {"kind": "initializer", "name": name or loss_name(init), "count": count, "seed": seed}
+    return Starts(np.stack(rows), spec)
+
+
+def _check_count(count: Any) -> int:
+    if (
+        isinstance(count, bool)
+        or not isinstance(count, (int, np.integer))
+        or not 1 <= count <= MAX_STARTS
+    ):
+        raise ParameterError(f"count must be an integer from 1 to {MAX_STARTS}; got {count!r}.")
+    return int(count)
+
+
+def as_starts(problem: Problem, starts: Any) -> Starts:
+    """Coerce ``starts`` (Starts, array, pytree or list of pytrees) to :class:`Starts`."""
+    if isinstance(starts, Starts):
+        if starts.points.shape[1] != problem.size:
+            raise ParameterError(
+                f"these starts have {starts.points.shape[1]} coordinates; the problem has {problem.size}."
+            )
+        return starts
+    return explicit_starts(problem, starts)
+
+
+def starts_from_spec(
+    problem: Problem,
+    spec: dict[str, Any],
+    *,
+    plane: Plane | None = None,
+    initializers: dict[str, Callable[[jax.Array], Any]] | None = None,
+) -> Starts:
+    """Rebuild starts from their spec (as stored in Settings)."""
+    kind = spec.get("kind")
+    if kind == "explicit":
+        return explicit_starts(problem, np.asarray(spec["points"], dtype=problem.dtype))
+    if kind == "random":
+        center = spec.get("center")
+        return random_starts(
+            problem,
+            spec["count"],
+            scale=spec["scale"],
+            seed=spec["seed"],
+            center=None if center is None else np.asarray(center, dtype=problem.dtype),
+        )
+    if kind == "grid":
+        if plane is None:
+            raise ParameterError("grid starts need the plane they were laid on.")
+        return grid_starts(plane, span=spec["span"], resolution=tuple(spec["resolution"]))
+    if kind == "initializer":
+        fn = (initializers or {}).get(spec["name"])
+        if fn is None:
+            raise ParameterError(
+                f"these starts came from the initialiser {spec['name']!r}; pass it as "
+                f"initializers={{{spec['name']!r}: function}} to rebuild them."
+            )
+        return initializer_starts(problem, fn, spec["count"], seed=spec["seed"], name=spec["name"])
+    raise ParameterError(
+        f"unknown starts kind {kind!r}; expected 'explicit', 'random', 'grid' or 'initializer'."
+    )

@@ -1,0 +1,276 @@
+"""The loss on a grid over a plane, and along a segment between two points.
+
+Grids are evaluated in compiled blocks: each block maps the loss over its
+points with ``jax.lax.map(..., batch_size=chunk)``, so memory is bounded by
+``chunk`` evaluations of the loss at a time whatever the grid or data size.
+Block sizes come from a few buckets, so changing the resolution or the span
+reuses compiled code.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pandas as pd
+
+from ._tuning import bucket, chunk_size_for, progress_bar
+from .errors import ParameterError
+from .planes import Plane
+from .problem import Problem
+
+__all__ = [
+    "MAX_RESOLUTION",
+    "Profile",
+    "Surface",
+    "evaluate_points",
+    "evaluate_surface",
+    "segment_profile",
+]
+
+MAX_RESOLUTION = 4001
+_MAX_CHUNKS_PER_CALL = 64
+
+
+@dataclass(frozen=True, eq=False)
+class Surface:
+    """The loss on a rectangular grid of a plane.
+
+    Attributes:
+        plane: the plane that was sliced.
+        a, b: grid coordinates along ``plane.d1`` and ``plane.d2``.
+        loss: ``(len(b), len(a))`` array; ``loss[j, i]`` is the loss at
+            ``plane.lift(a[i], b[j])``. Points where the loss is NaN or inf are
+            NaN (gaps).
+    """
+
+    plane: Plane
+    a: np.ndarray
+    b: np.ndarray
+    loss: np.ndarray
+
+    @property
+    def finite_fraction(self) -> float:
+        """Share of grid points where the loss was finite."""
+        return float(np.isfinite(self.loss).mean())
+
+    def grid_minimum(self) -> tuple[float, float, float]:
+        """``(a, b, loss)`` of the lowest grid point.
+
+        This is a minimum of the slice on this grid only: it need not be a
+        minimum (or even a critical point) of the full loss.
+        """
+        if not np.isfinite(self.loss).any():
+            raise ParameterError("the loss is not finite anywhere on this grid.")
+        j, i = np.unravel_index(np.nanargmin(self.loss), self.loss.shape)
+        return float(self.a[i]), float(self.b[j]), float(self.loss[j, i])
+
+    def to_frame(self) -> pd.DataFrame:
+        """Tidy table: one row per grid point, columns ``a``, ``b``, ``loss``."""
+        aa, bb = np.meshgrid(self.a, self.b)
+        return pd.DataFrame({"a": aa.ravel(), "b": bb.ravel(), "loss": self.loss.ravel()})
+
+
+@dataclass(frozen=True, eq=False)
+class Profile:
+    """The loss along ``(1 - t) * start + t * end``.
+
+    Attributes:
+        t: positions; 0 is ``start`` and 1 is ``end``.
+        loss: loss at each ``t`` (NaN where not finite).
+        barrier: highest loss on ``0 <= t <= 1`` minus the higher endpoint
+            loss; 0 when the segment never rises above its ends.
+    """
+
+    t: np.ndarray
+    loss: np.ndarray
+    start: np.ndarray
+    end: np.ndarray
+    barrier: float
+
+    def to_frame(self) -> pd.DataFrame:
+        return pd.DataFrame({"t": self.t, "loss": self.loss})
+
+
+def _ranges(span: Any) -> tuple[tuple[float, float], tuple[float, float]]:
+    arr = np.asarray(span, dtype=float)
+    if arr.shape == ():
+        arr = np.array([arr, arr])
+    if arr.shape == (2,):
+        arr = np.array([[-arr[0], arr[0]], [-arr[1], arr[1]]])
+    if arr.shape != (2, 2):
+        raise ParameterError(
+            "span must be a number s (grid [-s, s]^2), a pair (sa, sb), or "
+            f"((a_min, a_max), (b_min, b_max)); got shape {arr.shape}."
+        )
+    if not np.all(np.isfinite(arr)) or np.any(arr[:, 1] <= arr[:, 0]):
+        raise ParameterError(
+            f"span must be finite and each range must have min < max; got {arr.tolist()}. "
+            "A half-width s must be positive."
+        )
+    if np.any(np.abs(arr) > 1e12):
+        raise ParameterError(f"span {arr.tolist()} is absurdly large (beyond 1e12).")
+    return (float(arr[0, 0]), float(arr[0, 1])), (float(arr[1, 0]), float(arr[1, 1]))
+
+
+def _resolution(resolution: Any) -> tuple[int, int]:
+    res = np.asarray(resolution)
+    if res.shape == ():
+        res = np.array([res, res])
+    if res.shape != (2,) or not np.issubdtype(res.dtype, np.integer):
+        raise ParameterError(
+            f"resolution must be an integer or a pair of integers; got {resolution!r}."
+        )
+    if np.any(res < 2) or np.any(res > MAX_RESOLUTION):
+        raise ParameterError(
+            f"resolution must be between 2 and {MAX_RESOLUTION} points per axis; got "
+            f"{res.tolist()}. Larger grids take too much memory and time; zoom in "
+            "with span instead."
+        )
+    return int(res[0]), int(res[1])
+
+
+def _block_fn(problem: Problem, chunk: int, block: int) -> Any:
+    def build() -> Any:
+        def point(
+            ab: jax.Array, origin: jax.Array, d1: jax.Array, d2: jax.Array, data: Any
+        ) -> jax.Array:
+            return problem.flat_loss(origin + ab[0] * d1 + ab[1] * d2, data)
+
+        def run(
+            ab: jax.Array, origin: jax.Array, d1: jax.Array, d2: jax.Array, data: Any
+        ) -> jax.Array:
+            return jax.lax.map(lambda p: point(p, origin, d1, d2, data), ab, batch_size=chunk)
+
+        return jax.jit(run)
+
+    return problem.compiled(("surface-block", chunk, block), build)
+
+
+def evaluate_points(
+    problem: Problem,
+    origin: np.ndarray,
+    d1: np.ndarray,
+    d2: np.ndarray,
+    ab: np.ndarray,
+    *,
+    chunk_size: int | None = None,
+    progress: bool | None = None,
+) -> np.ndarray:
+    """Loss at ``origin + a * d1 + b * d2`` for each row ``(a, b)`` of ``ab``.
+
+    Non-finite values come back as NaN. Work is done in compiled blocks of
+    ``chunk_size`` points at a time (default: a size chosen from the data size).
+    """
+    dtype = problem.dtype
+    ab = np.asarray(ab, dtype=dtype).reshape(-1, 2)
+    total = ab.shape[0]
+    chunk = chunk_size or chunk_size_for(problem)
+    if chunk < 1:
+        raise ParameterError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
+    n_chunks = -(-total // chunk)
+    block = chunk * min(bucket(n_chunks, minimum=1), _MAX_CHUNKS_PER_CALL)
+    fn = _block_fn(problem, chunk, block)
+    args = [jnp.asarray(x, dtype=dtype) for x in (origin, d1, d2)]
+    out = np.empty(total, dtype=dtype)
+    starts = range(0, total, block)
+    for lo in progress_bar(starts, total=len(starts), show=progress, desc="surface"):
+        piece = ab[lo : lo + block]
+        m = piece.shape[0]
+        if m < block:
+            piece = np.concatenate([piece, np.zeros((block - m, 2), dtype=dtype)])
+        out[lo : lo + m] = np.asarray(fn(piece, *args, problem.data))[:m]
+    out[~np.isfinite(out)] = np.nan
+    return out
+
+
+def evaluate_surface(
+    problem: Problem,
+    plane: Plane,
+    *,
+    span: float | Sequence[Any] = 1.0,
+    resolution: int | Sequence[int] = 51,
+    chunk_size: int | None = None,
+    progress: bool | None = None,
+) -> Surface:
+    """The loss on a ``resolution`` grid of ``plane`` over ``span``.
+
+    Args:
+        problem: the problem.
+        plane: the slice (see :mod:`basinview.core.planes`).
+        span: half-width ``s`` (grid ``[-s, s]^2``), half-widths ``(sa, sb)``,
+            or explicit ranges ``((a_min, a_max), (b_min, b_max))``.
+        resolution: points per axis (2 to 4001), or ``(ra, rb)``.
+        chunk_size: loss evaluations vectorised at once; bounds memory.
+        progress: show a progress bar (default: only for large grids).
+
+    Caution: the surface is a 2-D slice of an n-dimensional loss. Its lowest
+    point is not necessarily a minimum of the loss.
+
+    Examples:
+        >>> import jax.numpy as jnp
+        >>> from basinview.core import Problem, axes_plane
+        >>> prob = Problem(lambda p: p["x"] ** 2 + 3 * p["y"] ** 2, {"x": 0.0, "y": 0.0})
+        >>> s = evaluate_surface(prob, axes_plane(prob, "x", "y"), span=1.0, resolution=3)
+        >>> s.loss.tolist()
+        [[4.0, 3.0, 4.0], [1.0, 0.0, 1.0], [4.0, 3.0, 4.0]]
+    """
+    if plane.size != problem.size:
+        raise ParameterError(
+            f"the plane has {plane.size} coordinates but the problem has {problem.size}; "
+            "build the plane from this problem."
+        )
+    (a0, a1), (b0, b1) = _ranges(span)
+    ra, rb = _resolution(resolution)
+    a = np.linspace(a0, a1, ra)
+    b = np.linspace(b0, b1, rb)
+    aa, bb = np.meshgrid(a, b)
+    ab = np.stack([aa.ravel(), bb.ravel()], axis=1)
+    show = progress if progress is not None else (ra * rb > 250_000)
+    loss = evaluate_points(
+        problem, plane.origin, plane.d1, plane.d2, ab, chunk_size=chunk_size, progress=show
+    )
+    return Surface(plane=plane, a=a, b=b, loss=loss.reshape(rb, ra))
+
+
+def segment_profile(
+    problem: Problem,
+    start: Any,
+    end: Any,
+    *,
+    resolution: int = 101,
+    extend: float = 0.25,
+) -> Profile:
+    """The loss along the straight segment from ``start`` to ``end``.
+
+    Evaluates ``J((1 - t) start + t end)`` for ``t`` in ``[-extend, 1 + extend]``
+    (``t = 0`` and ``t = 1`` are always on the grid) and reports the barrier:
+    the highest loss between the endpoints above the higher endpoint.
+
+    References:
+        Goodfellow, I. J., Vinyals, O. & Saxe, A. M. (2015). Qualitatively
+        characterizing neural network optimization problems. ICLR.
+        arXiv:1412.6544.
+    """
+    p0 = problem.flatten(start, what="segment start").astype(np.float64)
+    p1 = problem.flatten(end, what="segment end").astype(np.float64)
+    if not (np.all(np.isfinite(p0)) and np.all(np.isfinite(p1))):
+        raise ParameterError("segment endpoints must be finite.")
+    res = _resolution(resolution)[0]
+    if not (np.isfinite(extend) and 0 <= extend <= 10):
+        raise ParameterError(f"extend must be between 0 and 10; got {extend!r}.")
+    inner = np.linspace(0.0, 1.0, res)
+    step = 1.0 / (res - 1)
+    n_out = int(np.floor(extend / step + 1e-9))
+    t = np.concatenate([-step * np.arange(n_out, 0, -1), inner, 1 + step * np.arange(1, n_out + 1)])
+    ab = np.stack([t, np.zeros_like(t)], axis=1)
+    zero = np.zeros_like(p0)
+    loss = evaluate_points(problem, p0, p1 - p0, zero, ab).astype(np.float64)
+    within = (t >= -1e-12) & (t <= 1 + 1e-12)
+    ends = max(loss[n_out], loss[n_out + res - 1])
+    barrier = float(np.nanmax(loss[within]) - ends) if np.isfinite(ends) else float("nan")
+    return Profile(t=t, loss=loss, start=p0, end=p1, barrier=max(barrier, 0.0))
