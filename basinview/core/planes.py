@@ -14,7 +14,6 @@ plane a point is.
 
 from __future__ import annotations
 
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -283,21 +282,19 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     )
 
 
-# Filled by basinview.core.curvature (which depends on this module).
-_HESSIAN_PLANE: list[Callable[..., Plane]] = []
-
-
-def hessian_plane(problem: Problem, *, origin: Any = None, **options: Any) -> Plane:
+def hessian_plane(
+    problem: Problem, *, origin: Any = None, method: str = "auto", seed: int = 0
+) -> Plane:
     """The plane of the two top Hessian eigenvectors at ``origin``.
 
-    Implemented in :mod:`basinview.core.curvature`; this entry point keeps all
-    plane constructors in one place.
+    Along these directions the loss curves most steeply upward near the
+    origin, so this slice shows the directions that limit the step size.
+    ``method`` and ``seed`` are passed to
+    :func:`basinview.core.curvature.hessian_spectrum`.
     """
-    from . import curvature  # noqa: F401  (registers the implementation)
+    from .curvature import hessian_plane_impl
 
-    if not _HESSIAN_PLANE:
-        raise NotImplementedError("the Hessian plane needs basinview.core.curvature")
-    return _HESSIAN_PLANE[0](problem, origin=origin, **options)
+    return hessian_plane_impl(problem, origin=origin, method=method, seed=seed)
 
 
 def _check_seed(seed: Any) -> int:

@@ -1,0 +1,330 @@
+"""Curvature: Hessian spectra from Hessian-vector products, and step-size bounds.
+
+The Hessian at a point tells why a step size fails. For gradient descent on
+a quadratic, every eigen-direction of the Hessian is multiplied by
+``1 - lr * lambda`` per step, so the run is stable only if
+``lr < 2 / lambda_max``; momentum methods have their own bounds. This module
+computes the top (and bottom) of the spectrum without forming the Hessian for
+large models (Lanczos on Hessian-vector products) and exactly for small ones.
+
+Caution: on a non-quadratic loss the bound at a minimum says whether that
+minimum is a stable fixed point of the update rule. Exceeding it means the
+run cannot settle there, not that it must blow up: it may oscillate, settle
+elsewhere, or diverge.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .errors import ParameterError
+from .planes import Plane, _origin
+from .problem import Problem
+
+__all__ = [
+    "EXACT_LIMIT",
+    "Spectrum",
+    "adaptive_threshold",
+    "gauss_newton_matrix",
+    "hessian_matrix",
+    "hessian_plane_impl",
+    "hessian_spectrum",
+    "optimal_fixed_step",
+    "preconditioned_sharpness",
+    "stability_bound",
+    "standard_errors",
+]
+
+EXACT_LIMIT = 400
+"""Largest parameter count for which the dense Hessian is formed by default."""
+
+
+@dataclass(frozen=True, eq=False)
+class Spectrum:
+    """Extreme Hessian eigenvalues at a point.
+
+    Attributes:
+        values: the ``k`` largest eigenvalues, descending.
+        vectors: ``(k, n)`` unit eigenvectors matching ``values``.
+        lambda_min: the smallest eigenvalue (negative at saddles and maxima).
+        method: ``"exact"`` (dense Hessian + eigh) or ``"lanczos"``.
+    """
+
+    values: np.ndarray
+    vectors: np.ndarray
+    lambda_min: float
+    method: str
+
+    @property
+    def lambda_max(self) -> float:
+        return float(self.values[0])
+
+    @property
+    def condition(self) -> float:
+        """``lambda_max / lambda_min`` when the Hessian is positive definite, else inf."""
+        if self.lambda_min <= 0:
+            return math.inf
+        return self.lambda_max / self.lambda_min
+
+
+def _point(problem: Problem, theta: Any) -> jax.Array:
+    flat = problem.flatten(theta, what="point")
+    if not np.all(np.isfinite(flat)):
+        raise ParameterError("the point contains NaN or inf; curvature needs a finite point.")
+    return jnp.asarray(flat, dtype=problem.dtype)
+
+
+def hessian_matrix(problem: Problem, theta: Any) -> np.ndarray:
+    """The dense ``(n, n)`` Hessian at ``theta`` (use for small ``n`` only)."""
+    fn = problem.compiled("hessian", lambda: jax.jit(jax.hessian(problem.flat_loss)))
+    h = np.asarray(fn(_point(problem, theta), problem.data), dtype=np.float64)
+    return 0.5 * (h + h.T)
+
+
+def _lanczos(
+    matvec: Callable[[np.ndarray], np.ndarray], n: int, iterations: int, seed: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """Ritz values and vectors after ``iterations`` Lanczos steps (full reorthogonalisation)."""
+    rng = np.random.default_rng(seed)
+    q = rng.standard_normal(n)
+    q /= np.linalg.norm(q)
+    basis = np.zeros((iterations, n))
+    alpha = np.zeros(iterations)
+    beta = np.zeros(iterations)
+    m = iterations
+    for j in range(iterations):
+        basis[j] = q
+        w = matvec(q)
+        alpha[j] = q @ w
+        w = w - basis[: j + 1].T @ (basis[: j + 1] @ w)
+        w = w - basis[: j + 1].T @ (basis[: j + 1] @ w)
+        b = np.linalg.norm(w)
+        if j + 1 < iterations:
+            if b < 1e-12 * max(1.0, abs(alpha[j])):
+                m = j + 1
+                break
+            beta[j] = b
+            q = w / b
+    t = np.diag(alpha[:m]) + np.diag(beta[: m - 1], 1) + np.diag(beta[: m - 1], -1)
+    vals, vecs = np.linalg.eigh(t)
+    ritz = vecs.T @ basis[:m]
+    return vals, ritz
+
+
+def hessian_spectrum(
+    problem: Problem,
+    theta: Any,
+    k: int = 2,
+    *,
+    method: str = "auto",
+    iterations: int | None = None,
+    seed: int = 0,
+) -> Spectrum:
+    """Top-``k`` Hessian eigenpairs and the smallest eigenvalue at ``theta``.
+
+    Args:
+        problem: the problem.
+        theta: the point (pytree or flat vector).
+        k: number of largest eigenpairs to return.
+        method: ``"exact"`` forms the Hessian and calls ``eigh``; ``"lanczos"``
+            runs Lanczos iterations on Hessian-vector products (memory O(n x
+            iterations)); ``"auto"`` is exact up to :data:`EXACT_LIMIT` parameters.
+        iterations: Lanczos steps (default ``min(n, max(4k + 40, 60))``).
+        seed: seed of the Lanczos start vector.
+
+    References:
+        Lanczos, C. (1950). An iteration method for the solution of the eigenvalue
+        problem of linear differential and integral operators. J. Res. Nat. Bur.
+        Standards 45:255-282. Golub, G. H. & Van Loan, C. F., Matrix Computations,
+        ch. 10. Pearlmutter, B. A. (1994). Fast exact multiplication by the
+        Hessian. Neural Computation 6(1):147-160.
+    """
+    n = problem.size
+    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or not 1 <= k <= n:
+        raise ParameterError(
+            f"k must be an integer from 1 to {n} (the parameter count); got {k!r}."
+        )
+    if method not in ("auto", "exact", "lanczos"):
+        raise ParameterError(f"method must be 'auto', 'exact' or 'lanczos'; got {method!r}.")
+    point = _point(problem, theta)
+    if method == "exact" or (method == "auto" and n <= EXACT_LIMIT):
+        h = hessian_matrix(problem, point)
+        if not np.all(np.isfinite(h)):
+            raise ParameterError("the Hessian is not finite at this point.")
+        vals, vecs = np.linalg.eigh(h)
+        order = np.argsort(vals)[::-1][:k]
+        return Spectrum(vals[order], vecs[:, order].T, float(vals[0]), "exact")
+    steps = iterations or min(n, max(4 * k + 40, 60))
+    dtype = problem.dtype
+
+    def matvec(v: np.ndarray) -> np.ndarray:
+        return np.asarray(problem.hvp(point, jnp.asarray(v, dtype)), dtype=np.float64)
+
+    vals, ritz = _lanczos(matvec, n, steps, seed)
+    if not np.all(np.isfinite(vals)):
+        raise ParameterError("Hessian-vector products are not finite at this point.")
+    order = np.argsort(vals)[::-1][:k]
+    vecs = ritz[order]
+    vecs /= np.linalg.norm(vecs, axis=1, keepdims=True)
+    return Spectrum(vals[order], vecs, float(vals.min()), "lanczos")
+
+
+def stability_bound(
+    optimizer: str, lambda_max: float, hyper: Mapping[str, float] | None = None
+) -> float | None:
+    """Largest stable learning rate predicted at a point with top eigenvalue ``lambda_max``.
+
+    * gradient descent: ``2 / lambda_max``;
+    * heavy-ball momentum ``beta``: ``2 (1 + beta) / lambda_max``;
+    * Nesterov momentum ``beta``: ``(2 + 2 beta) / ((1 + 2 beta) lambda_max)``.
+
+    Returns None for update rules without a fixed bound in ``lambda_max``
+    alone (Adam, RMSProp, the sequential variant: see
+    :func:`preconditioned_sharpness` and :func:`sequential_bound`) and when
+    ``lambda_max <= 0`` (no curvature limits the step).
+
+    References:
+        Polyak, B. T. (1964). Some methods of speeding up the convergence of
+        iteration methods. USSR Comput. Math. Math. Phys. 4(5):1-17.
+        Nesterov, Y. (1983). A method of solving a convex programming problem
+        with convergence rate O(1/k^2). Soviet Math. Dokl. 27:372-376.
+    """
+    hyper = dict(hyper or {})
+    if not math.isfinite(lambda_max) or lambda_max <= 0:
+        return None
+    name = optimizer.lower()
+    if name in ("gradient_descent", "gd"):
+        return 2.0 / lambda_max
+    beta = float(hyper.get("momentum", 0.9))
+    if name in ("momentum", "heavy_ball"):
+        return 2.0 * (1.0 + beta) / lambda_max
+    if name in ("nesterov", "nag"):
+        return (2.0 + 2.0 * beta) / ((1.0 + 2.0 * beta) * lambda_max)
+    return None
+
+
+def sequential_bound(hessian: np.ndarray) -> float | None:
+    """A learning rate below which the sequential variant surely converges on a quadratic.
+
+    Coordinate-by-coordinate updates with step ``lr`` on a quadratic with
+    symmetric positive definite Hessian ``H`` form the splitting
+    ``M = I / lr + L`` (``L`` the strictly lower part of ``H``). By the
+    Householder-John theorem the iteration converges from every start when
+    ``M + M^T - H = 2 I / lr - diag(H)`` is positive definite, i.e. for
+    ``lr < 2 / max_i H_ii``. This is sufficient, not necessary: the exact
+    threshold (where the iteration matrix's spectral radius reaches 1) can be
+    higher. It is never below gradient descent's ``2 / lambda_max``.
+
+    References:
+        Ortega, J. M. (1972). Numerical Analysis: A Second Course. Academic
+        Press (Householder-John theorem; from memory).
+    """
+    h = np.asarray(hessian, dtype=np.float64)
+    diag = np.diag(h)
+    if np.any(np.linalg.eigvalsh(h) <= 0) or diag.max() <= 0:
+        return None
+    return float(2.0 / diag.max())
+
+
+def optimal_fixed_step(lambda_max: float, lambda_min: float) -> float | None:
+    """``2 / (L + mu)``, the fixed step that contracts fastest on a quadratic (mu > 0).
+
+    References:
+        Nesterov, Y. (2004). Introductory Lectures on Convex Optimization,
+        Theorem 2.1.15.
+    """
+    if not (lambda_min > 0 and lambda_max >= lambda_min):
+        return None
+    return 2.0 / (lambda_max + lambda_min)
+
+
+def adaptive_threshold(optimizer: str, hyper: Mapping[str, float] | None = None) -> float | None:
+    """Stability threshold of ``lr * lambda_max(P^-1 H)`` for adaptive rules.
+
+    For Adam with first-moment decay ``b1`` the threshold is
+    ``(2 + 2 b1) / (1 - b1)`` (38 for ``b1 = 0.9``); RMSProp has no momentum
+    and the threshold 2 of gradient descent on the preconditioned problem.
+    The preconditioner ``P = diag(sqrt(v) + eps)`` changes during a run, so
+    this is a statement about the current state, not a fixed learning rate.
+
+    References:
+        Cohen, J. M. et al. (2022). Adaptive gradient methods at the edge of
+        stability. arXiv:2207.14484.
+    """
+    hyper = dict(hyper or {})
+    name = optimizer.lower()
+    if name == "adam":
+        b1 = float(hyper.get("b1", 0.9))
+        return (2.0 + 2.0 * b1) / (1.0 - b1)
+    if name == "rmsprop":
+        return 2.0
+    return None
+
+
+def preconditioned_sharpness(problem: Problem, theta: Any, precond: Any) -> float:
+    """``lambda_max(P^-1/2 H P^-1/2)`` for a diagonal preconditioner ``P`` (flat, positive)."""
+    p = np.asarray(problem.flatten(precond, what="preconditioner"), dtype=np.float64)
+    if np.any(p <= 0) or not np.all(np.isfinite(p)):
+        raise ParameterError("the preconditioner must be positive and finite.")
+    h = hessian_matrix(problem, theta)
+    s = 1.0 / np.sqrt(p)
+    return float(np.linalg.eigvalsh(h * s[:, None] * s[None, :])[-1])
+
+
+def gauss_newton_matrix(problem: Problem, theta: Any, residuals: Callable[..., Any]) -> np.ndarray:
+    """``J^T J`` for ``residuals(params, *data) -> vector`` at ``theta``.
+
+    For a loss ``sum(residuals**2)`` the Hessian is ``2 J^T J`` plus terms
+    weighted by the residuals; near a good fit ``2 J^T J`` dominates.
+    """
+    point = _point(problem, theta)
+
+    def flat_res(t: jax.Array) -> jax.Array:
+        return jnp.ravel(residuals(problem.flattener.unravel(t), *problem.data))
+
+    j = np.asarray(jax.jacfwd(flat_res)(point), dtype=np.float64)
+    return j.T @ j
+
+
+def standard_errors(problem: Problem, theta: Any, residuals: Callable[..., Any]) -> np.ndarray:
+    """Standard errors ``sqrt(s^2 diag((J^T J)^-1))`` of a least-squares fit.
+
+    ``s^2 = RSS / (m - n)`` with ``m`` residuals and ``n`` parameters: the
+    usual asymptotic standard errors of nonlinear least squares.
+
+    References:
+        Bates, D. M. & Watts, D. G. (1988). Nonlinear Regression Analysis and
+        Its Applications. Wiley, ch. 2 (from memory).
+    """
+    point = _point(problem, theta)
+    r = np.ravel(
+        np.asarray(residuals(problem.flattener.unravel(point), *problem.data), dtype=np.float64)
+    )
+    m, n = r.size, problem.size
+    if m <= n:
+        raise ParameterError(f"standard errors need more residuals ({m}) than parameters ({n}).")
+    jtj = gauss_newton_matrix(problem, point, residuals)
+    s2 = float(r @ r) / (m - n)
+    return np.sqrt(s2 * np.diag(np.linalg.inv(jtj)))
+
+
+def hessian_plane_impl(
+    problem: Problem, *, origin: Any = None, method: str = "auto", seed: int = 0
+) -> Plane:
+    """The plane of the two top Hessian eigenvectors at ``origin`` (unit directions)."""
+    theta, origin_list = _origin(problem, origin)
+    spec = hessian_spectrum(problem, theta, k=2, method=method, seed=seed)
+    d1, d2 = (spec.vectors[i].astype(problem.dtype) for i in range(2))
+    titles = (
+        f"eigenvector 1 (λ = {spec.values[0]:.4g})",
+        f"eigenvector 2 (λ = {spec.values[1]:.4g})",
+    )
+    plane_spec = {"kind": "hessian", "method": method, "seed": int(seed), "origin": origin_list}
+    return Plane(theta, d1, d2, titles, plane_spec)
