@@ -1,0 +1,273 @@
+"""Which descent runs to draw, in which colour, and with how many points.
+
+Runs are drawn in groups (one trace per group, paths separated by NaN
+gaps), so a figure with hundreds of runs has a handful of traces and builds
+quickly. Groups are by the minimum a run reached, by learning rate, or by
+start; runs that diverged always form their own grey, dashed group.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from ..core.descent import Runs
+from ..core.errors import ParameterError
+from .style import DIVERGED, NOT_CONVERGED, category_colour
+
+__all__ = [
+    "COLOR_BY",
+    "PathGroup",
+    "draw_indices",
+    "group_runs",
+    "select_runs",
+    "stack_paths",
+]
+
+COLOR_BY = ("auto", "minimum", "learning_rate", "start", "status")
+
+
+@dataclass(frozen=True)
+class PathGroup:
+    """Runs drawn alike.
+
+    Attributes:
+        key: short stable id used in trace uids (``"m0"``, ``"lr1"``, ``"diverged"``).
+        name: legend text.
+        colour, dash, end_symbol: line colour, dash style and end-marker symbol.
+        runs: indices of the runs of this group that are drawn.
+        total: runs in the group before the cap on drawn paths.
+    """
+
+    key: str
+    name: str
+    colour: str
+    dash: str
+    end_symbol: str
+    runs: np.ndarray
+    total: int
+
+
+def _candidates(runs: Runs, which: Any) -> np.ndarray:
+    n = len(runs)
+    if which is None:
+        return np.arange(n)
+    arr = np.asarray(list(which) if isinstance(which, Iterable) else which)
+    if arr.dtype == bool:
+        if arr.shape != (n,):
+            raise ParameterError(
+                f"a boolean `which` needs one entry per run ({n}); got {arr.shape}."
+            )
+        return np.flatnonzero(arr)
+    if arr.size == 0:
+        raise ParameterError("`which` selects no runs; pass None to draw all runs.")
+    if not np.issubdtype(arr.dtype, np.integer) or arr.min() < 0 or arr.max() >= n:
+        raise ParameterError(
+            f"`which` must hold run indices from 0 to {n - 1}; got {arr.tolist()}."
+        )
+    return np.unique(arr)
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.3g}"
+
+
+def group_runs(
+    runs: Runs, *, minima: Any = None, color_by: str = "auto", which: Any = None
+) -> list[PathGroup]:
+    """Group runs for drawing (before any cap on their number).
+
+    Args:
+        runs: the runs.
+        minima: optional :class:`~basinview.core.minima.Minima` of these runs;
+            its ``assignment`` gives each run's minimum.
+        color_by: ``"minimum"`` (needs ``minima``), ``"learning_rate"``,
+            ``"start"``, ``"status"``, or ``"auto"`` (minimum when ``minima``
+            is given, else learning rate when there are several, else start).
+        which: run indices or a boolean mask of runs to draw (default all).
+    """
+    if color_by not in COLOR_BY:
+        raise ParameterError(f"color_by must be one of {COLOR_BY}; got {color_by!r}.")
+    idx = _candidates(runs, which)
+    lrs = runs.hyper.get("learning_rate", np.zeros(len(runs)))
+    if color_by == "auto":
+        if minima is not None:
+            color_by = "minimum"
+        elif len(np.unique(lrs)) > 1:
+            color_by = "learning_rate"
+        else:
+            color_by = "start"
+    if color_by == "minimum" and minima is None:
+        raise ParameterError("color_by='minimum' needs minima=find_minima(problem, runs).")
+    status = np.asarray(runs.status)
+    diverged = idx[status[idx] == "diverged"]
+    rest = idx[status[idx] != "diverged"]
+    groups: list[PathGroup] = []
+
+    def add(key: str, name: str, members: np.ndarray, colour: str, dash: str = "solid") -> None:
+        if members.size:
+            groups.append(PathGroup(key, name, colour, dash, "circle", members, int(members.size)))
+
+    if color_by == "minimum":
+        assignment = np.asarray(minima.assignment)
+        if assignment.shape != (len(runs),):
+            raise ParameterError(
+                f"minima.assignment has {assignment.shape[0]} entries but there are "
+                f"{len(runs)} runs; find the minima of these runs."
+            )
+        labels = list(minima.labels)
+        for k in range(len(labels)):
+            kind = str(minima.kind[k])
+            name = f"{labels[k]}: {kind}, loss {_fmt(float(minima.loss[k]))}"
+            add(f"m{k}", name, rest[assignment[rest] == k], category_colour(k))
+        stuck = rest[assignment[rest] < 0]
+        diverged = np.union1d(diverged, idx[assignment[idx] == -1])
+        stuck = np.setdiff1d(stuck, diverged)
+        if stuck.size:
+            groups.append(
+                PathGroup(
+                    "stuck",
+                    NOT_CONVERGED["name"],
+                    NOT_CONVERGED["colour"],
+                    NOT_CONVERGED["dash"],
+                    NOT_CONVERGED["end_symbol"],
+                    stuck,
+                    int(stuck.size),
+                )
+            )
+    elif color_by == "learning_rate":
+        for k, lr in enumerate(np.unique(lrs[rest])):
+            add(
+                f"lr{k}",
+                f"learning rate {_fmt(float(lr))}",
+                rest[lrs[rest] == lr],
+                category_colour(k),
+            )
+    elif color_by == "start":
+        starts = np.asarray(runs.start_index)
+        for k, s in enumerate(np.unique(starts[rest])):
+            add(f"s{s}", f"start {s}", rest[starts[rest] == s], category_colour(k))
+    else:  # status
+        add("converged", "converged", rest[status[rest] == "converged"], category_colour(2))
+        stuck = rest[status[rest] == "max_steps"]
+        if stuck.size:
+            groups.append(
+                PathGroup(
+                    "stuck",
+                    NOT_CONVERGED["name"],
+                    NOT_CONVERGED["colour"],
+                    NOT_CONVERGED["dash"],
+                    NOT_CONVERGED["end_symbol"],
+                    stuck,
+                    int(stuck.size),
+                )
+            )
+    if diverged.size:
+        groups.append(
+            PathGroup(
+                "diverged",
+                DIVERGED["name"],
+                DIVERGED["colour"],
+                DIVERGED["dash"],
+                DIVERGED["end_symbol"],
+                diverged,
+                int(diverged.size),
+            )
+        )
+    return groups
+
+
+def select_runs(groups: list[PathGroup], max_paths: int) -> tuple[list[PathGroup], int]:
+    """Cap the number of drawn runs at ``max_paths``, keeping every group visible.
+
+    Each group keeps a share of ``max_paths`` proportional to its size (at
+    least one run), taken evenly spaced through the group so the choice is
+    deterministic. Returns the capped groups and the number of runs left out.
+    """
+    if isinstance(max_paths, bool) or not isinstance(max_paths, (int, np.integer)) or max_paths < 1:
+        raise ParameterError(f"max_paths must be a positive integer; got {max_paths!r}.")
+    total = sum(g.total for g in groups)
+    if total <= max_paths:
+        return groups, 0
+    sizes = np.array([g.total for g in groups])
+    quota = max_paths * sizes / total
+    keep = np.minimum(np.maximum(1, np.floor(quota).astype(int)), sizes)
+    # hand out what is left of the budget by largest remainder
+    for i in np.argsort(-(quota - np.floor(quota)), kind="stable"):
+        if keep.sum() >= max_paths:
+            break
+        if keep[i] < sizes[i]:
+            keep[i] += 1
+    out = []
+    drawn = 0
+    for g, k in zip(groups, keep):
+        pick = np.unique(np.linspace(0, g.total - 1, int(k)).round().astype(int))
+        out.append(PathGroup(g.key, g.name, g.colour, g.dash, g.end_symbol, g.runs[pick], g.total))
+        drawn += pick.size
+    return out, total - drawn
+
+
+def draw_indices(n_points: int, max_points: int) -> np.ndarray:
+    """Indices of the iterates to draw from a path of ``n_points``.
+
+    Keeps everything up to ``max_points``; beyond, keeps the first quarter of
+    the budget step by step (where paths move most) and thins the rest
+    geometrically, always keeping the last iterate. Hover labels show the
+    true step numbers.
+
+    Examples:
+        >>> draw_indices(5, 10).tolist()
+        [0, 1, 2, 3, 4]
+        >>> idx = draw_indices(10_000, 100)
+        >>> int(idx[0]), int(idx[-1]), len(idx) <= 100
+        (0, 9999, True)
+    """
+    if max_points < 4:
+        raise ParameterError(f"max_points must be at least 4; got {max_points!r}.")
+    if n_points <= max_points:
+        return np.arange(n_points)
+    head = max_points // 4
+    tail = np.unique(np.geomspace(head, n_points - 1, max_points - head).round().astype(int))
+    idx = np.concatenate([np.arange(head), tail])
+    return idx
+
+
+def stack_paths(
+    runs: Runs,
+    members: np.ndarray,
+    *,
+    max_points: int,
+    with_z: bool = False,
+) -> dict[str, np.ndarray]:
+    """Concatenate the paths of ``members`` with NaN rows between them.
+
+    Returns ``x``, ``y`` (plane coordinates), ``z`` (recorded loss, when
+    ``with_z``) and ``custom`` (rows ``[run, step, loss, off_plane]`` for
+    hover labels). Non-finite coordinates become NaN gaps.
+    """
+    xs, ys, cs = [], [], []
+    for r in members:
+        stop = int(runs.stop_step[r])
+        keep = draw_indices(stop + 1, max_points)
+        xy = np.asarray(runs.path[r, keep], dtype=np.float64)
+        loss = np.asarray(runs.losses[r, keep], dtype=np.float64)
+        off = np.asarray(runs.off_plane[r, keep], dtype=np.float64)
+        bad = ~np.isfinite(xy).all(axis=1)
+        xy[bad] = np.nan
+        xs.append(np.append(xy[:, 0], np.nan))
+        ys.append(np.append(xy[:, 1], np.nan))
+        rows = np.stack([np.full(keep.size, r, dtype=np.float64), keep, loss, off], axis=1)
+        cs.append(np.vstack([rows, np.full((1, 4), np.nan)]))
+    if not xs:
+        empty = np.zeros(0)
+        return {"x": empty, "y": empty, "z": empty, "custom": np.zeros((0, 4))}
+    custom = np.vstack(cs)
+    out = {"x": np.concatenate(xs), "y": np.concatenate(ys), "custom": custom}
+    if with_z:
+        z = custom[:, 2].copy()
+        z[~np.isfinite(z)] = np.nan
+        out["z"] = z
+    return out

@@ -1,0 +1,468 @@
+"""Figures of a 2-D slice: contour map with descent paths, and a 3-D relief.
+
+Caution, repeated on the figures themselves: a slice is a 2-D cut through
+an n-dimensional loss. A low point of the slice need not be a minimum of
+the model, and descent paths leave the plane; what is drawn is their
+projection, and the hover label gives each point's distance off the plane.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import plotly.graph_objects as go
+
+from ..core.descent import Runs
+from ..core.errors import ParameterError
+from ..core.planes import Plane
+from ..core.surface import Surface
+from .levels import Levels, choose_levels
+from .paths import PathGroup, group_runs, select_runs, stack_paths
+from .style import SURFACE_SCALE, add_note, base_layout, uid
+
+__all__ = ["coordinate_shift", "relief_figure", "slice_caution", "slice_figure"]
+
+_PATH_HOVER = (
+    "run %{customdata[0]}<br>step %{customdata[1]}<br>loss %{customdata[2]:.5g}"
+    "<br>off-plane distance %{customdata[3]:.3g}<extra>%{fullData.name}</extra>"
+)
+
+
+def _same_plane(p: Plane | None, q: Plane) -> bool:
+    if p is None:
+        return False
+    if p is q:
+        return True
+    return all(
+        np.allclose(np.asarray(x, np.float64), np.asarray(y, np.float64), rtol=1e-6, atol=1e-12)
+        for x, y in ((p.origin, q.origin), (p.d1, q.d1), (p.d2, q.d2))
+    )
+
+
+def check_runs_plane(runs: Runs, plane: Plane) -> None:
+    """Raise unless ``runs`` were recorded on ``plane`` (paths are projections on it)."""
+    if not _same_plane(runs.plane, plane):
+        raise ParameterError(
+            "the runs were recorded on another plane than the surface's, so their paths "
+            "cannot be drawn on it. Run descend(..., plane=surface.plane)."
+        )
+
+
+def slice_caution(plane: Plane, runs: Runs | None = None, drawn: np.ndarray | None = None) -> str:
+    """One-line caution for a figure of ``plane`` (empty for a 2-parameter problem)."""
+    n = plane.size
+    if n <= 2:
+        return ""
+    text = (
+        f"2-D slice of a {n}-parameter loss: a low point here need not be a minimum of the model."
+    )
+    if runs is not None:
+        members = np.arange(len(runs)) if drawn is None else drawn
+        off = np.asarray(runs.off_plane)[members] if members.size else np.zeros(0)
+        far = float(np.nanmax(off)) if np.isfinite(off).any() else 0.0
+        text += f" Paths leave the plane (largest off-plane distance {far:.3g}; see hover)."
+    return text
+
+
+def coordinate_shift(plane: Plane) -> tuple[float, float]:
+    """Offsets that turn plane coordinates into parameter values, for axes planes.
+
+    On a plane of two named coordinates, ``a`` and ``b`` are offsets from the
+    origin; adding the origin's values makes the axes read in the
+    parameters' own values. Other planes have no such reading: ``(0, 0)``.
+    """
+    if plane.spec.get("kind") != "axes":
+        return 0.0, 0.0
+    i = int(np.argmax(np.abs(plane.d1)))
+    j = int(np.argmax(np.abs(plane.d2)))
+    return float(plane.origin[i]), float(plane.origin[j])
+
+
+def shift_traces(fig: go.Figure, plane: Plane) -> None:
+    """Move every trace and axis range of ``fig`` by :func:`coordinate_shift`."""
+    sa, sb = coordinate_shift(plane)
+    if sa == 0 and sb == 0:
+        return
+    for trace in fig.data:
+        if trace.x is not None:
+            trace.x = np.asarray(trace.x, dtype=np.float64) + sa
+        if trace.y is not None:
+            trace.y = np.asarray(trace.y, dtype=np.float64) + sb
+    if fig.layout.xaxis.range is not None:
+        fig.layout.xaxis.range = [v + sa for v in fig.layout.xaxis.range]
+    if fig.layout.yaxis.range is not None:
+        fig.layout.yaxis.range = [v + sb for v in fig.layout.yaxis.range]
+
+
+def _isotropic(plane: Plane, surface: Surface) -> bool:
+    g = plane.gram
+    scale = np.sqrt(g[0, 0] * g[1, 1])
+    iso = abs(g[0, 0] - g[1, 1]) <= 1e-6 * scale and abs(g[0, 1]) <= 1e-6 * scale
+    wa = float(surface.a[-1] - surface.a[0])
+    wb = float(surface.b[-1] - surface.b[0])
+    return bool(iso and 0.25 <= wa / wb <= 4)
+
+
+def _colourbar(levels: Levels, z: np.ndarray) -> dict[str, Any]:
+    bar: dict[str, Any] = {"title": {"text": levels.title, "side": "right"}, "thickness": 14}
+    ticks = levels.ticks(z)
+    if ticks is not None:
+        bar["tickvals"], bar["ticktext"] = ticks
+    return bar
+
+
+def _end_points(runs: Runs, group: PathGroup, bounds: tuple[float, float, float, float]):
+    """Last drawn point of each run that lies inside ``bounds`` (for end markers)."""
+    a0, a1, b0, b1 = bounds
+    xs, ys, custom = [], [], []
+    for r in group.runs:
+        path = np.asarray(runs.trajectory(r), dtype=np.float64)
+        inside = np.isfinite(path).all(axis=1)
+        inside &= (path[:, 0] >= a0) & (path[:, 0] <= a1) & (path[:, 1] >= b0) & (path[:, 1] <= b1)
+        last = np.flatnonzero(inside)
+        if last.size == 0:
+            continue
+        k = int(last[-1])
+        xs.append(path[k, 0])
+        ys.append(path[k, 1])
+        custom.append([r, k, float(runs.losses[r, k]), float(runs.off_plane[r, k])])
+    return np.array(xs), np.array(ys), np.array(custom).reshape(-1, 4)
+
+
+def _path_traces(
+    fig: go.Figure,
+    runs: Runs,
+    groups: list[PathGroup],
+    bounds: tuple[float, float, float, float],
+    max_points: int,
+) -> None:
+    # Diverged runs first (underneath), thin and grey: they zig-zag across the view.
+    order = sorted(range(len(groups)), key=lambda i: groups[i].key != "diverged")
+    rank = {groups[i].key: 10 + i for i in range(len(groups))}
+    groups = [groups[i] for i in order]
+    stacks = [stack_paths(runs, g.runs, max_points=max_points) for g in groups]
+    # A white casing under the other paths keeps them readable on dark and light colours.
+    cased = [s for g, s in zip(groups, stacks) if g.key != "diverged"]
+    if cased:
+        fig.add_trace(
+            go.Scatter(
+                x=np.concatenate([s["x"] for s in cased]),
+                y=np.concatenate([s["y"] for s in cased]),
+                mode="lines",
+                line={"color": "rgba(255,255,255,0.85)", "width": 4.5},
+                hoverinfo="skip",
+                showlegend=False,
+                uid=uid("slice", "casing"),
+            )
+        )
+    for g, s in zip(groups, stacks):
+        thin = g.key == "diverged"
+        fig.add_trace(
+            go.Scatter(
+                x=s["x"],
+                y=s["y"],
+                customdata=s["custom"],
+                mode="lines",
+                name=g.name,
+                legendgroup=g.key,
+                legendrank=rank[g.key],
+                opacity=0.75 if thin else 1.0,
+                line={"color": g.colour, "width": 1.2 if thin else 2, "dash": g.dash},
+                hovertemplate=_PATH_HOVER,
+                uid=uid("slice", "path", g.key),
+            )
+        )
+    for g in groups:
+        ex, ey, ec = _end_points(runs, g, bounds)
+        fig.add_trace(
+            go.Scatter(
+                x=ex,
+                y=ey,
+                customdata=ec,
+                mode="markers",
+                name=f"{g.name} (end)",
+                legendgroup=g.key,
+                showlegend=False,
+                marker={
+                    "symbol": g.end_symbol,
+                    "size": 11 if g.key == "diverged" else 9,
+                    "color": g.colour,
+                    "line": {"color": g.colour if g.key == "diverged" else "white", "width": 1.5},
+                },
+                hovertemplate="end of run: " + _PATH_HOVER,
+                uid=uid("slice", "end", g.key),
+            )
+        )
+    drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
+    fig.add_trace(
+        go.Scatter(
+            x=runs.path[drawn, 0, 0],
+            y=runs.path[drawn, 0, 1],
+            customdata=np.stack(
+                [drawn, np.zeros_like(drawn), runs.losses[drawn, 0], runs.off_plane[drawn, 0]],
+                axis=1,
+            ),
+            mode="markers",
+            name="start",
+            legendrank=1000,
+            marker={
+                "symbol": "circle",
+                "size": 8,
+                "color": "white",
+                "line": {"color": "#2B2B2B", "width": 1.5},
+            },
+            hovertemplate="start: " + _PATH_HOVER,
+            uid=uid("slice", "start"),
+        )
+    )
+
+
+def _minima_trace(fig: go.Figure, minima: Any, plane: Plane, figure: str) -> None:
+    a, b, off = plane.project(np.asarray(minima.points, dtype=np.float64))
+    labels = list(minima.labels)
+    custom = np.stack([np.asarray(minima.loss, np.float64), off], axis=1)
+    kinds = [str(k) for k in minima.kind]
+    fig.add_trace(
+        go.Scatter(
+            x=a,
+            y=b,
+            text=labels,
+            customdata=custom,
+            hovertext=[f"{lab}: {kind}" for lab, kind in zip(labels, kinds)],
+            mode="markers+text",
+            textposition="top right",
+            textfont={"size": 14, "color": "#111111"},
+            name="critical points found",
+            marker={
+                "symbol": ["star" if k == "minimum" else "diamond-tall" for k in kinds],
+                "size": 15,
+                "color": "white",
+                "line": {"color": "#111111", "width": 1.5},
+            },
+            hovertemplate=(
+                "%{hovertext}<br>loss %{customdata[0]:.5g}<br>off-plane distance "
+                "%{customdata[1]:.3g}<extra></extra>"
+            ),
+            uid=uid(figure, "critical-points"),
+        )
+    )
+
+
+def slice_figure(
+    surface: Surface,
+    runs: Runs | None = None,
+    *,
+    minima: Any = None,
+    which: Any = None,
+    color_by: str = "auto",
+    levels: str = "auto",
+    max_paths: int = 60,
+    max_points: int = 300,
+    title: str | None = None,
+) -> go.Figure:
+    """Contour map of a surface with descent paths drawn on it.
+
+    Each path starts at a white circle and ends at a filled marker in its
+    colour. Paths are coloured by the minimum they reached (when ``minima``
+    is given), else by learning rate or start; runs that diverged are grey
+    and dashed and end in a cross at their last point inside the view.
+    Hover on any point of a path for its run, step, loss and distance off
+    the plane.
+
+    Args:
+        surface: the loss on the plane (:func:`~basinview.core.evaluate_surface`).
+        runs: descent runs recorded on ``surface.plane``.
+        minima: critical points found from ``runs`` (marked, and used for colours).
+        which: run indices or a boolean mask of runs to draw (default all).
+        color_by: ``"auto"``, ``"minimum"``, ``"learning_rate"``, ``"start"``, ``"status"``.
+        levels: ``"auto"`` (log levels when the finite losses span three
+            decades or more), ``"linear"`` or ``"log"``.
+        max_paths: at most this many paths are drawn; the figure says how many
+            were left out.
+        max_points: longer paths are thinned to about this many points for drawing.
+        title: figure title.
+
+    Returns:
+        A plotly ``Figure``. NaN losses stay gaps in the contour map.
+    """
+    plane = surface.plane
+    lv = choose_levels(surface.loss, levels)
+    z = lv.apply(surface.loss)
+    fig = go.Figure()
+    fig.add_trace(
+        go.Contour(
+            x=surface.a,
+            y=surface.b,
+            z=z,
+            customdata=np.where(np.isfinite(surface.loss), surface.loss, np.nan),
+            colorscale=SURFACE_SCALE,
+            connectgaps=False,
+            ncontours=24,
+            contours={"coloring": "heatmap", "showlines": True},
+            line={"width": 0.6, "color": "rgba(255,255,255,0.45)"},
+            colorbar=_colourbar(lv, z),
+            hovertemplate=(
+                f"{plane.axis_titles[0]} %{{x:.4g}}<br>{plane.axis_titles[1]} %{{y:.4g}}"
+                "<br>loss %{customdata:.5g}<extra></extra>"
+            ),
+            name="loss",
+            uid=uid("slice", "surface"),
+        )
+    )
+    bounds = (float(surface.a[0]), float(surface.a[-1]), float(surface.b[0]), float(surface.b[-1]))
+    notes = []
+    drawn = None
+    if runs is not None:
+        check_runs_plane(runs, plane)
+        groups, left_out = select_runs(
+            group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+        )
+        _path_traces(fig, runs, groups, bounds, max_points)
+        drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
+        if left_out:
+            notes.append(
+                f"Showing {drawn.size} of {drawn.size + left_out} runs (max_paths={max_paths}); "
+                "every group keeps at least one run."
+            )
+    if minima is not None:
+        _minima_trace(fig, minima, plane, "slice")
+    caution = slice_caution(plane, runs, drawn)
+    if caution:
+        notes.insert(0, caution)
+    layout = base_layout(title or "Loss on the slice", _subtitle(surface, runs))
+    layout["legend"].update({"orientation": "v", "x": 1.16, "y": 1, "xanchor": "left"})
+    layout["margin"]["b"] = 80 + 17 * len(notes)
+    layout["margin"]["r"] = 250 if runs is not None or minima is not None else 40
+    fig.update_layout(**layout)
+    fig.update_xaxes(title=plane.axis_titles[0], range=bounds[:2], showgrid=False, zeroline=False)
+    fig.update_yaxes(title=plane.axis_titles[1], range=bounds[2:], showgrid=False, zeroline=False)
+    if _isotropic(plane, surface):
+        fig.update_yaxes(scaleanchor="x", scaleratio=1, constrain="domain")
+        fig.update_xaxes(constrain="domain")
+    for i, text in enumerate(notes):
+        add_note(fig, text, row=i)
+    shift_traces(fig, plane)
+    return fig
+
+
+def _subtitle(surface: Surface, runs: Runs | None) -> str:
+    ra, rb = surface.loss.shape[1], surface.loss.shape[0]
+    parts = [f"{ra} × {rb} grid"]
+    if surface.finite_fraction < 1:
+        parts.append(f"{100 * (1 - surface.finite_fraction):.1f}% of points not finite (gaps)")
+    if runs is not None:
+        parts.append(f"{len(runs)} runs of {runs.rule}")
+    return ", ".join(parts)
+
+
+def relief_figure(
+    surface: Surface,
+    runs: Runs | None = None,
+    *,
+    minima: Any = None,
+    which: Any = None,
+    color_by: str = "auto",
+    levels: str = "auto",
+    max_paths: int = 30,
+    max_points: int = 200,
+    title: str | None = None,
+) -> go.Figure:
+    """3-D surface of the loss over the slice, with descent paths draped on it.
+
+    A path point's height is the loss the run recorded there, not the
+    surface height below its projection: where a path floats above or sinks
+    below the surface, the run has left the plane. The height axis is
+    logarithmic when the levels are (see :func:`slice_figure`).
+    """
+    plane = surface.plane
+    lv = choose_levels(surface.loss, levels)
+    colour = lv.apply(surface.loss)
+    log_z = lv.mode == "log"
+    height = np.where(np.isfinite(surface.loss), surface.loss, np.nan).astype(np.float64)
+    fig = go.Figure()
+    fig.add_trace(
+        go.Surface(
+            x=surface.a,
+            y=surface.b,
+            z=height,
+            surfacecolor=colour,
+            colorscale=SURFACE_SCALE,
+            colorbar=_colourbar(lv, colour),
+            opacity=0.92,
+            contours={
+                "z": {"show": True, "usecolormap": True, "project": {"z": False}, "width": 1}
+            },
+            hovertemplate=(
+                f"{plane.axis_titles[0]} %{{x:.4g}}<br>{plane.axis_titles[1]} %{{y:.4g}}"
+                "<br>loss %{z:.5g}<extra></extra>"
+            ),
+            name="loss",
+            uid=uid("relief", "surface"),
+        )
+    )
+    finite = height[np.isfinite(height)]
+    zlo, zhi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
+    notes = []
+    if runs is not None:
+        check_runs_plane(runs, plane)
+        groups, left_out = select_runs(
+            group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+        )
+        box = (surface.a[0], surface.a[-1], surface.b[0], surface.b[-1], zlo, zhi * 1.05)
+        for g in groups:
+            s = stack_paths(runs, g.runs, max_points=max_points, with_z=True)
+            x, y, zz = _clip_box(s["x"], s["y"], s["z"], box, log_z)
+            fig.add_trace(
+                go.Scatter3d(
+                    x=x,
+                    y=y,
+                    z=zz,
+                    customdata=s["custom"],
+                    mode="lines",
+                    name=g.name,
+                    line={"color": g.colour, "width": 5, "dash": g.dash},
+                    hovertemplate=_PATH_HOVER,
+                    uid=uid("relief", "path", g.key),
+                )
+            )
+        if left_out:
+            n = sum(g.runs.size for g in groups)
+            notes.append(f"Showing {n} of {n + left_out} runs (max_paths={max_paths}).")
+    caution = slice_caution(plane)
+    notes.insert(
+        0,
+        (caution + " " if caution else "")
+        + "Path height is the loss each run recorded; a path off the surface has left the plane.",
+    )
+    layout = base_layout(title or "Loss relief over the slice")
+    layout["margin"].update({"l": 10, "r": 10, "b": 50 + 17 * len(notes)})
+    layout["legend"].update({"x": 0.01, "y": 0.98, "xanchor": "left", "yanchor": "top"})
+    fig.update_layout(**layout, showlegend=runs is not None)
+    fig.update_scenes(
+        xaxis_title=plane.axis_titles[0],
+        yaxis_title=plane.axis_titles[1],
+        zaxis_title="loss",
+        zaxis_type="log" if log_z else "linear",
+        zaxis_dtick=1 if log_z else None,
+        aspectmode="manual",
+        aspectratio={"x": 1, "y": 1, "z": 0.6},
+        camera={"eye": {"x": 1.5, "y": -1.5, "z": 1.0}},
+    )
+    for i, text in enumerate(notes):
+        add_note(fig, text, row=i)
+    shift_traces(fig, plane)
+    return fig
+
+
+def _clip_box(x, y, z, box, log_z: bool):
+    """NaN out path points outside the drawn box (diverging runs shoot off)."""
+    a0, a1, b0, b1, _z0, z1 = box
+    out = ~((x >= a0) & (x <= a1) & (y >= b0) & (y <= b1) & (z <= z1))
+    if log_z:
+        out |= ~(z > 0)
+    x, y, z = x.copy(), y.copy(), z.copy()
+    x[out] = np.nan
+    y[out] = np.nan
+    z[out] = np.nan
+    return x, y, z

@@ -1,0 +1,143 @@
+"""The visual language of basinview figures: colours, layout and notes.
+
+Categorical colours come from the palette of Okabe & Ito, chosen so that
+people with the common forms of colour-vision deficiency can still tell
+them apart; loss values use the sequential ``cividis`` colourscale, which
+was designed for the same readers and stays ordered when printed in grey.
+
+Every trace gets a fixed ``uid`` built from the figure and the trace's role
+(:func:`uid`), so that rebuilding a figure from the same results gives
+byte-identical output (stable notebook outputs under nbval).
+
+References:
+    Okabe, M. & Ito, K. (2008). Color Universal Design (CUD): how to make
+    figures and presentations that are friendly to colorblind people.
+    J*Fly, https://jfly.uni-koeln.de/color/.
+
+    Nuñez, J. R., Anderton, C. R. & Renslow, R. S. (2018). Optimizing
+    colormaps with consideration for color vision deficiency to enable
+    accurate interpretation of scientific data. PLOS ONE 13(7): e0199239.
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Any
+
+import plotly.graph_objects as go
+
+__all__ = [
+    "CATEGORY_COLOURS",
+    "DIVERGED",
+    "NOT_CONVERGED",
+    "OKABE_ITO",
+    "SURFACE_SCALE",
+    "add_note",
+    "base_layout",
+    "category_colour",
+    "uid",
+]
+
+#: The eight colours of Okabe & Ito (2008), by their published names.
+OKABE_ITO: dict[str, str] = {
+    "black": "#000000",
+    "orange": "#E69F00",
+    "sky blue": "#56B4E9",
+    "bluish green": "#009E73",
+    "yellow": "#F0E442",
+    "blue": "#0072B2",
+    "vermillion": "#D55E00",
+    "reddish purple": "#CC79A7",
+}
+
+#: Order in which categories (minima, learning rates, starts) take colours.
+#: Black and yellow come last: black is kept for markers and text, and yellow
+#: is hard to see on light backgrounds.
+CATEGORY_COLOURS: tuple[str, ...] = (
+    OKABE_ITO["vermillion"],
+    OKABE_ITO["blue"],
+    OKABE_ITO["bluish green"],
+    OKABE_ITO["reddish purple"],
+    OKABE_ITO["orange"],
+    OKABE_ITO["sky blue"],
+    OKABE_ITO["yellow"],
+)
+
+#: Style of runs that diverged: neutral grey, dashed, ended by a cross.
+DIVERGED = {"colour": "#8C8C8C", "dash": "dash", "end_symbol": "x-thin-open", "name": "diverged"}
+
+#: Style of runs that spent their step budget without converging.
+NOT_CONVERGED = {
+    "colour": "#3B3B3B",
+    "dash": "dot",
+    "end_symbol": "circle-open",
+    "name": "not converged",
+}
+
+#: Sequential colourscale of loss values (low = dark blue, high = light yellow).
+SURFACE_SCALE = "cividis"
+
+_FONT = "Source Sans Pro, Segoe UI, Helvetica, Arial, sans-serif"
+_INK = "#2B2B2B"
+_NOTE = "#5A5A5A"
+
+
+def category_colour(i: int) -> str:
+    """Colour of category ``i`` (cycles after seven categories)."""
+    return CATEGORY_COLOURS[i % len(CATEGORY_COLOURS)]
+
+
+def uid(figure: str, role: str, index: int | str | None = None) -> str:
+    """A fixed trace id: ``"<figure>-<role>"`` or ``"<figure>-<role>-<index>"``.
+
+    Only letters, digits and hyphens are used: plotly.js builds element ids
+    and CSS selectors from uids (a dot there makes it redraw colour bars on
+    top of each other instead of replacing them).
+
+    Examples:
+        >>> uid("slice", "path", 3)
+        'slice-path-3'
+    """
+    text = f"{figure}-{role}" if index is None else f"{figure}-{role}-{index}"
+    return re.sub(r"[^A-Za-z0-9-]", "-", text)
+
+
+def base_layout(title: str | None, subtitle: str | None = None, **extra: Any) -> dict[str, Any]:
+    """Layout shared by all figures: white paper, quiet grid, left-aligned title."""
+    text = title or ""
+    if subtitle:
+        text = f"{text}<br><span style='font-size:12px;color:{_NOTE}'>{subtitle}</span>"
+    layout: dict[str, Any] = {
+        "template": "plotly_white",
+        "font": {"family": _FONT, "size": 13, "color": _INK},
+        "title": {"text": text, "x": 0.01, "xanchor": "left", "y": 0.97, "yanchor": "top"},
+        "margin": {"l": 70, "r": 30, "t": 80 if subtitle else 60, "b": 100},
+        "legend": {
+            "bgcolor": "rgba(255,255,255,0.85)",
+            "bordercolor": "#D0D0D0",
+            "borderwidth": 1,
+            "font": {"size": 12},
+        },
+        "hoverlabel": {"font": {"family": _FONT}},
+        "paper_bgcolor": "white",
+        "plot_bgcolor": "white",
+    }
+    layout.update(extra)
+    return layout
+
+
+def add_note(fig: go.Figure, text: str, *, row: int = 0) -> None:
+    """Write a short caution or remark under the plot area (row 0 is the first line)."""
+    fig.add_annotation(
+        text=text,
+        xref="paper",
+        yref="paper",
+        x=0,
+        y=0,
+        xanchor="left",
+        yanchor="top",
+        yshift=-56 - 17 * row,
+        showarrow=False,
+        align="left",
+        font={"size": 11, "color": _NOTE},
+    )
