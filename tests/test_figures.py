@@ -399,3 +399,131 @@ def test_not_converged_style_is_distinct_from_diverged():
     assert NOT_CONVERGED["colour"] != DIVERGED["colour"]
     assert NOT_CONVERGED["dash"] != DIVERGED["dash"]
     assert NOT_CONVERGED["end_symbol"] != DIVERGED["end_symbol"]
+
+
+# ------------------------------------------------------------------ basins
+
+
+def himmelblau(p):
+    return (p["x"] ** 2 + p["y"] - 11) ** 2 + (p["x"] + p["y"] ** 2 - 7) ** 2
+
+
+@pytest.fixture(scope="module")
+def himmelblau_basins():
+    prob = core.Problem(himmelblau, {"x": 0.0, "y": 0.0})
+    plane = core.axes_plane(prob, "x", "y")
+    bm = core.basin_map(prob, plane, span=5.0, resolution=9, learning_rate=0.01, steps=600)
+    surface = core.evaluate_surface(prob, plane, span=5.0, resolution=21)
+    return prob, plane, bm, surface
+
+
+def test_basin_figure_finds_the_four_published_minima(himmelblau_basins):
+    _, _, bm, surface = himmelblau_basins
+    # Source: Himmelblau, D. M. (1972), Applied Nonlinear Programming, McGraw-Hill:
+    # four minima with f = 0 at (3, 2), (-2.805118, 3.131312), (-3.779310, -3.283186),
+    # (3.584428, -1.848126) (coordinates from memory).
+    published = np.array(
+        [[3.0, 2.0], [-2.805118, 3.131312], [-3.779310, -3.283186], [3.584428, -1.848126]]
+    )
+    found = bm.minima.points[np.asarray(bm.minima.kind) == "minimum"].astype(float)
+    assert len(found) == 4
+    for p in published:
+        assert np.min(np.linalg.norm(found - p, axis=1)) < 1e-2
+    fig = F.basin_figure(bm, surface=surface)
+    heat = fig.data[0]
+    assert heat.type == "heatmap" and heat.showscale is False
+    keys = [t for t in fig.data if t.uid.startswith("basins-key-")]
+    present = sorted(set(np.unique(bm.label).tolist()))
+    assert len(keys) == len(present)
+    shares = [float(re.search(r"\((\d+)% of starts\)", t.name).group(1)) for t in keys]
+    assert sum(shares) == pytest.approx(100, abs=len(keys))  # rounded percentages
+    # each cell's colour index points at the legend entry of its label
+    z = np.asarray(heat.z, dtype=float).astype(int)
+    for code_index, key in enumerate(keys):
+        letter = key.name.split(":")[0].split(" (")[0]
+        cells = bm.label[z == code_index]
+        if letter in bm.minima.labels:
+            assert np.all(cells == bm.minima.labels.index(letter))
+    assert any(t.uid == "basins-contours" for t in fig.data)
+    assert uids(fig) == uids(F.basin_figure(bm, surface=surface))
+
+
+def test_basin_figure_diverged_and_stuck_cells_are_distinct(himmelblau_basins):
+    _, _, bm, _ = himmelblau_basins
+    label = bm.label.copy()
+    label[0, :3] = -1
+    label[1, :2] = -2
+    fake = core.BasinMap(bm.plane, bm.a, bm.b, label, bm.minima, bm.runs)
+    fig = F.basin_figure(fake)
+    keys = {
+        t.name.split(" (")[0]: t.marker.color for t in fig.data if t.uid.startswith("basins-key")
+    }
+    assert keys["diverged"] == DIVERGED["colour"]
+    assert keys["not converged"] == NOT_CONVERGED["colour"]
+    minimum_colours = [c for name, c in keys.items() if ":" in name]
+    assert DIVERGED["colour"] not in minimum_colours
+    assert NOT_CONVERGED["colour"] not in minimum_colours
+    bad = label.copy()
+    bad[2, 2] = 17
+    with pytest.raises(core.BasinviewError, match="match no minimum"):
+        F.basin_figure(core.BasinMap(bm.plane, bm.a, bm.b, bad, bm.minima, bm.runs))
+
+
+def test_slice_colours_paths_by_minimum(himmelblau_basins):
+    prob, plane, _, surface = himmelblau_basins
+    starts = core.explicit_starts(
+        prob, np.array([[1.0, 1.0], [-1.0, 1.0], [-1, -1], [1, -1]], np.float32)
+    )
+    runs = core.descend(prob, starts, learning_rate=[0.01, 0.05], steps=600, plane=plane)
+    minima = core.find_minima(prob, runs)
+    fig = F.slice_figure(surface, runs, minima=minima)
+    paths = {t.uid: t for t in fig.data if t.uid.startswith("slice-path-")}
+    assignment = np.asarray(minima.assignment)
+    for k in np.unique(assignment[assignment >= 0]):
+        trace = paths[f"slice-path-m{k}"]
+        assert trace.name.startswith(minima.labels[k] + ":")
+        assert segments(trace) == int(np.sum(assignment == k))
+    marks = next(t for t in fig.data if t.uid == "slice-critical-points")
+    assert list(marks.text) == list(minima.labels)
+
+
+# ------------------------------------------------------------------ step size
+
+
+@pytest.fixture(scope="module")
+def bowl_sweep():
+    prob = core.Problem(bowl, {"x": 0.5, "y": 0.5})
+    starts = core.explicit_starts(
+        prob, np.array([[1.5, 1.0], [-1.0, 1.2], [0.3, -1.4]], np.float32)
+    )
+    rates = [0.01, 0.1, 0.5, 0.9, 0.99, 1.1, 2.0]
+    return core.step_size_sweep(prob, starts, learning_rates=rates, steps=100)
+
+
+def test_step_size_figure_marks_the_predicted_bound(bowl_sweep):
+    # Source: gradient descent on a quadratic is stable iff lr < 2 / lambda_max;
+    # here the Hessian is 2 I, so the bound is 1 (Nocedal & Wright, Numerical
+    # Optimization, 2nd ed., sec. 3.3; common practice).
+    assert bowl_sweep.predicted_bound == pytest.approx(1.0, rel=1e-5)
+    fig = F.step_size_figure(bowl_sweep, y="steps")
+    assert fig.layout.xaxis.type == "log" and fig.layout.xaxis2.type == "log"
+    dashed = [s for s in fig.layout.shapes if s.type == "line" and s.line.dash == "dash"]
+    assert dashed and all(s.x0 == pytest.approx(1.0, rel=1e-5) for s in dashed)
+    texts = {a.text: a for a in fig.layout.annotations}
+    label = next(t for t in texts if t.startswith("predicted bound"))
+    # annotations on a log axis are placed at log10 of the value
+    assert texts[label].x == pytest.approx(0.0, abs=1e-6)
+    observed = next(t for t in texts if t.startswith("observed bound"))
+    assert texts[observed].x == pytest.approx(np.log10(bowl_sweep.observed_bound))
+    bands = [s for s in fig.layout.shapes if s.type == "rect"]
+    assert len(bands) == len(bowl_sweep.table)
+    regimes = {t.name for t in fig.data if t.uid.startswith("sweep-regime-")}
+    assert regimes == set(bowl_sweep.table.regime)
+    diverge = next(t for t in fig.data if t.uid == "sweep-regime-diverge")
+    assert all("x" in s for s in diverge.marker.symbol)  # no finite value: cross at the top
+    shares = [t for t in fig.data if t.uid.startswith("sweep-share-")]
+    total = np.sum([np.asarray(t.y, dtype=float) for t in shares], axis=0)
+    np.testing.assert_allclose(total, 1.0)
+    assert uids(fig) == uids(F.step_size_figure(bowl_sweep, y="steps"))
+    with pytest.raises(core.BasinviewError, match="final_loss"):
+        F.step_size_figure(bowl_sweep, y="loss")
