@@ -47,6 +47,7 @@ from .problem import Problem
 from .settings import SCHEMA_VERSION, Settings, View, compute_view, record_settings
 from .starts import (
     Starts,
+    combine_starts,
     explicit_starts,
     grid_starts,
     initializer_starts,
@@ -100,6 +101,7 @@ __all__ = [
     "descend",
     "evaluate_points",
     "evaluate_surface",
+    "combine_starts",
     "explicit_starts",
     "find_minima",
     "gauss_newton_matrix",

@@ -19,7 +19,7 @@ from typing import Any
 import jax
 import numpy as np
 
-from .errors import ParameterError
+from .errors import BasinviewError, ParameterError
 from .planes import Plane, _check_seed
 from .problem import Problem, loss_name
 from .surface import _ranges, _resolution
@@ -28,6 +28,7 @@ __all__ = [
     "MAX_STARTS",
     "Starts",
     "as_starts",
+    "combine_starts",
     "explicit_starts",
     "grid_starts",
     "initializer_starts",
@@ -46,7 +47,8 @@ class Starts:
     spec: dict[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
-        pts = np.asarray(self.points)
+        # A private copy: freezing must never make the caller's own array read-only.
+        pts = np.array(self.points, copy=True)
         if pts.ndim != 2 or pts.shape[0] == 0:
             raise ParameterError(f"starts must be a non-empty (S, n) array; got shape {pts.shape}.")
         if not np.all(np.isfinite(pts)):
@@ -99,7 +101,10 @@ def grid_starts(plane: Plane, *, span: Any = 1.0, resolution: Any = 21) -> Start
     (a0, a1), (b0, b1) = _ranges(span)
     ra, rb = _resolution(resolution)
     if ra * rb > MAX_STARTS:
-        raise ParameterError(f"a {ra} x {rb} grid has more than {MAX_STARTS} starts.")
+        raise ParameterError(
+            f"a {ra} x {rb} grid has more than {MAX_STARTS} starts; lower the resolution "
+            "(e.g. 101 per axis) or zoom in with span."
+        )
     a = np.linspace(a0, a1, ra)
     b = np.linspace(b0, b1, rb)
     aa, bb = np.meshgrid(a, b)
@@ -167,7 +172,9 @@ def initializer_starts(
             params = init(keys[i])
         except Exception as exc:
             raise ParameterError(
-                f"the initialiser {loss_name(init)} raised {type(exc).__name__} for key {i}: {exc}"
+                f"the initialiser {loss_name(init)} raised {type(exc).__name__} for key {i}: "
+                f"{exc}. Check that it runs on its own, e.g. init(jax.random.key(0)), and "
+                "returns parameters shaped like the problem's."
             ) from exc
         rows.append(problem.flatten(params, what=f"initialiser output {i}"))
     spec = {"kind": "initializer", "name": name or loss_name(init), "count": count, "seed": seed}
@@ -182,6 +189,20 @@ def _check_count(count: Any) -> int:
     ):
         raise ParameterError(f"count must be an integer from 1 to {MAX_STARTS}; got {count!r}.")
     return int(count)
+
+
+def combine_starts(*parts: Starts) -> Starts:
+    """One set of starts made of several (e.g. random draws plus hand-picked points)."""
+    parts = tuple(p for p in parts if p is not None)
+    if not parts:
+        raise ParameterError("combine_starts needs at least one set of starts.")
+    sizes = {p.points.shape[1] for p in parts}
+    if len(sizes) != 1:
+        raise ParameterError(f"cannot combine starts of different parameter counts {sorted(sizes)}.")
+    if len(parts) == 1:
+        return parts[0]
+    spec = {"kind": "combined", "parts": [p.spec for p in parts]}
+    return Starts(np.concatenate([p.points for p in parts]), spec)
 
 
 def as_starts(problem: Problem, starts: Any) -> Starts:
@@ -202,7 +223,35 @@ def starts_from_spec(
     plane: Plane | None = None,
     initializers: dict[str, Callable[[jax.Array], Any]] | None = None,
 ) -> Starts:
-    """Rebuild starts from their spec (as stored in Settings)."""
+    """Rebuild starts from their spec (as stored in Settings).
+
+    The spec is data: a missing or mistyped field is reported as a
+    :class:`ParameterError` naming it, never as a raw ``KeyError``.
+    """
+    if not isinstance(spec, dict):
+        raise ParameterError(
+            f"starts spec: expected an object with a 'kind'; got {type(spec).__name__}."
+        )
+    try:
+        return _starts_from_spec(problem, spec, plane=plane, initializers=initializers)
+    except BasinviewError:
+        raise
+    except (KeyError, TypeError, ValueError, IndexError, RecursionError) as exc:
+        what = f"lacks the field {exc}" if isinstance(exc, KeyError) else f"is malformed ({exc})"
+        raise ParameterError(
+            f"the {spec.get('kind')!r} starts spec {what}. Rebuild the starts with "
+            "explicit_starts, random_starts, grid_starts or initializer_starts and use "
+            "their .spec."
+        ) from None
+
+
+def _starts_from_spec(
+    problem: Problem,
+    spec: dict[str, Any],
+    *,
+    plane: Plane | None,
+    initializers: dict[str, Callable[[jax.Array], Any]] | None,
+) -> Starts:
     kind = spec.get("kind")
     if kind == "explicit":
         return explicit_starts(problem, np.asarray(spec["points"], dtype=problem.dtype))
@@ -227,6 +276,14 @@ def starts_from_spec(
                 f"initializers={{{spec['name']!r}: function}} to rebuild them."
             )
         return initializer_starts(problem, fn, spec["count"], seed=spec["seed"], name=spec["name"])
+    if kind == "combined":
+        parts = spec.get("parts")
+        if not isinstance(parts, list) or not parts:
+            raise ParameterError("combined starts need a non-empty list of parts.")
+        return combine_starts(
+            *(starts_from_spec(problem, part, plane=plane, initializers=initializers) for part in parts)
+        )
     raise ParameterError(
-        f"unknown starts kind {kind!r}; expected 'explicit', 'random', 'grid' or 'initializer'."
+        f"unknown starts kind {kind!r}; expected 'explicit', 'random', 'grid', 'initializer' "
+        "or 'combined'."
     )

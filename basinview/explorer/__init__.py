@@ -1,0 +1,20 @@
+"""The Explorer widget (ipywidgets + plotly FigureWidget).
+
+See :class:`Explorer`. The pure parts (view state, stage planning,
+computation) live in :mod:`.state` and :mod:`.compute` and import no widgets.
+"""
+
+from .compute import ViewComputer, ViewResults
+from .state import STAGES, ViewState, stages_to_update, state_from_settings
+from .widget import SIDE_VIEWS, Explorer
+
+__all__ = [
+    "SIDE_VIEWS",
+    "STAGES",
+    "Explorer",
+    "ViewComputer",
+    "ViewResults",
+    "ViewState",
+    "stages_to_update",
+    "state_from_settings",
+]

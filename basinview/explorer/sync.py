@@ -1,0 +1,71 @@
+"""Copy a freshly built figure into a live FigureWidget, sending only what changed.
+
+Figures are built by the pure functions of :mod:`basinview.figures`; every
+trace there has a fixed ``uid``. When the new figure has the same traces
+(same uids, same order) as the widget, only changed properties are sent
+(the contour grid is not re-sent when only paths moved). Otherwise the
+traces are replaced in one batch. A FigureWidget gives every trace a fresh
+random uid of its own, so the source uids are kept in :func:`source_uids`.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import plotly.graph_objects as go
+
+__all__ = ["source_uids", "sync_figure"]
+
+_UIDS = "_basinview_source_uids"
+
+
+def _same(a: Any, b: Any) -> bool:
+    if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
+        try:
+            return np.array_equal(np.asarray(a), np.asarray(b), equal_nan=True)
+        except TypeError:
+            return np.array_equal(np.asarray(a, dtype=object), np.asarray(b, dtype=object))
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(_same(a[k], b[k]) for k in a)
+    if isinstance(a, (list, tuple)) and isinstance(b, (list, tuple)):
+        return len(a) == len(b) and all(_same(x, y) for x, y in zip(a, b))
+    return bool(a == b)
+
+
+def sync_figure(target: go.FigureWidget, source: go.Figure) -> bool:
+    """Make ``target`` show ``source``. Returns True if the traces were replaced.
+
+    Callbacks registered on replaced traces are lost; the caller re-registers
+    them when this returns True.
+    """
+    old_uids = source_uids(target)
+    new_uids = [t.uid for t in source.data]
+    replaced = old_uids != new_uids or len(target.data) != len(new_uids)
+    with target.batch_update():
+        if replaced:
+            target.data = []
+            target.add_traces(list(source.data))
+        else:
+            for old, new in zip(target.data, source.data):
+                old_json = old.to_plotly_json()
+                new_json = new.to_plotly_json()
+                new_json.pop("uid", None)
+                changed = {
+                    k: v
+                    for k, v in new_json.items()
+                    if k not in old_json or not _same(old_json[k], v)
+                }
+                removed = [k for k in old_json if k not in new_json and k not in ("type", "uid")]
+                for key in removed:
+                    old[key] = None
+                if changed:
+                    old.update(changed, overwrite=True)
+        target.layout = source.layout
+    setattr(target, _UIDS, new_uids)
+    return replaced
+
+
+def source_uids(target: go.FigureWidget) -> list[str]:
+    """The uids the traces of ``target`` had in the figure they were copied from."""
+    return list(getattr(target, _UIDS, []))
