@@ -21,3 +21,12 @@ def test_lazy_attributes_resolve():
 
     assert basinview.scenarios.beacon().problem.size == 2
     assert "descend" in dir(basinview)
+
+
+def test_figures_import_no_widgets():
+    code = (
+        "import sys, basinview.figures;"
+        "print(','.join(m for m in ('ipywidgets', 'anywidget') if m in sys.modules))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == ""
