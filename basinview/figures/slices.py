@@ -436,7 +436,7 @@ def relief_figure(
         + "Path height is the loss each run recorded; a path off the surface has left the plane.",
     )
     layout = base_layout(title or "Loss relief over the slice")
-    layout["margin"].update({"l": 10, "r": 10, "b": 50 + 17 * len(notes)})
+    layout["margin"].update({"l": 10, "r": 10, "b": 70 + 17 * len(notes)})
     layout["legend"].update({"x": 0.01, "y": 0.98, "xanchor": "left", "yanchor": "top"})
     fig.update_layout(**layout, showlegend=runs is not None)
     fig.update_scenes(
