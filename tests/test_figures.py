@@ -527,3 +527,18 @@ def test_step_size_figure_marks_the_predicted_bound(bowl_sweep):
     assert uids(fig) == uids(F.step_size_figure(bowl_sweep, y="steps"))
     with pytest.raises(core.BasinviewError, match="final_loss"):
         F.step_size_figure(bowl_sweep, y="loss")
+
+
+def test_auto_colours_fall_back_when_no_run_reached_a_point(bowl_view):
+    prob, plane, surface, _ = bowl_view
+    starts = np.array([[1.5, 1.0], [-1.0, 1.2]], np.float32)
+    runs = core.descend(prob, starts, learning_rate=[0.01, 0.02], steps=3, plane=plane)
+    minima = core.find_minima(prob, runs)
+    assert len(minima) == 0 and np.all(minima.assignment == -2)
+    fig = F.slice_figure(surface, runs, minima=minima)
+    names = sorted(t.name for t in fig.data if t.uid.startswith("slice-path-"))
+    assert names == ["learning rate 0.01", "learning rate 0.02"]
+    forced = F.slice_figure(surface, runs, minima=minima, color_by="minimum")
+    only = [t for t in forced.data if t.uid.startswith("slice-path-")]
+    assert [t.name for t in only] == [NOT_CONVERGED["name"]]
+    assert only[0].line.dash == NOT_CONVERGED["dash"]

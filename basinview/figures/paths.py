@@ -86,7 +86,8 @@ def group_runs(
             its ``assignment`` gives each run's minimum.
         color_by: ``"minimum"`` (needs ``minima``), ``"learning_rate"``,
             ``"start"``, ``"status"``, or ``"auto"`` (minimum when ``minima``
-            is given, else learning rate when there are several, else start).
+            is given and some drawn run reached one, else learning rate when
+            there are several, else start).
         which: run indices or a boolean mask of runs to draw (default all).
     """
     if color_by not in COLOR_BY:
@@ -94,7 +95,8 @@ def group_runs(
     idx = _candidates(runs, which)
     lrs = runs.hyper.get("learning_rate", np.zeros(len(runs)))
     if color_by == "auto":
-        if minima is not None:
+        reached = minima is not None and np.any(np.asarray(minima.assignment)[idx] >= 0)
+        if reached:
             color_by = "minimum"
         elif len(np.unique(lrs)) > 1:
             color_by = "learning_rate"

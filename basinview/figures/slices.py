@@ -58,10 +58,17 @@ def slice_caution(plane: Plane, runs: Runs | None = None, drawn: np.ndarray | No
         f"2-D slice of a {n}-parameter loss: a low point here need not be a minimum of the model."
     )
     if runs is not None:
-        members = np.arange(len(runs)) if drawn is None else drawn
-        off = np.asarray(runs.off_plane)[members] if members.size else np.zeros(0)
-        far = float(np.nanmax(off)) if np.isfinite(off).any() else 0.0
-        text += f" Paths leave the plane (largest off-plane distance {far:.3g}; see hover)."
+        members = np.arange(len(runs)) if drawn is None else np.asarray(drawn)
+        tame = members[np.asarray(runs.status)[members] != "diverged"] if members.size else members
+        off = np.asarray(runs.off_plane)[tame]
+        if np.isfinite(off).any():
+            text += (
+                f" Paths leave the plane (largest off-plane distance {float(np.nanmax(off)):.3g}"
+                + (" among runs that did not diverge" if tame.size < members.size else "")
+                + "; see hover)."
+            )
+        else:
+            text += " Paths leave the plane (see the off-plane distance on hover)."
     return text
 
 
