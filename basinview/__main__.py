@@ -54,9 +54,12 @@ def _existing(path: str, what: str, suffixes: tuple[str, ...]) -> Path:
             f"{what} {path!r} must be a {' or '.join(suffixes)} file; got suffix {p.suffix!r}."
         )
     if not p.exists():
-        raise CommandError(f"{what} file {path!r} does not exist.")
+        raise CommandError(
+            f"{what} file {path!r} does not exist; check the path (relative to the current "
+            f"folder {os.getcwd()})."
+        )
     if not p.is_file():
-        raise CommandError(f"{what} {path!r} is not a file.")
+        raise CommandError(f"{what} {path!r} is not a file; give the path of a {suffixes[0]} file.")
     return p
 
 
@@ -117,7 +120,9 @@ def load_params(path: str) -> Any:
     if p.suffix.lower() == ".npz":
         params = _read_npz(p, "params file")
         if not params:
-            raise CommandError(f"params file {path!r} holds no arrays.")
+            raise CommandError(
+                f"params file {path!r} holds no arrays; save them with numpy.savez(file, w=..., b=...)."
+            )
         return params
     try:
         raw = json.loads(p.read_text(encoding="utf-8"))
@@ -126,7 +131,7 @@ def load_params(path: str) -> Any:
     except json.JSONDecodeError as exc:
         raise CommandError(
             f"params file {path!r} is not valid JSON (line {exc.lineno}, column {exc.colno}: "
-            f"{exc.msg})."
+            f"{exc.msg}); fix the file or write it with json.dump(params, file)."
         ) from None
     return _from_json(raw, "")
 
@@ -139,6 +144,10 @@ def load_data(path: str, keys: str | None = None) -> tuple[Any, ...]:
     """Data arrays from a ``.npz`` file, in the order of ``keys`` (comma-separated) or sorted."""
     p = _existing(path, "data", (".npz",))
     arrays = _read_npz(p, "data file")
+    if not arrays:
+        raise CommandError(
+            f"data file {path!r} holds no arrays; save them with numpy.savez(file, x=..., y=...)."
+        )
     if keys is None:
         order = sorted(arrays, key=_natural)
     else:
@@ -194,7 +203,10 @@ def load_function(spec: str) -> Any:
             )
         target = getattr(target, part)
     if not callable(target):
-        raise CommandError(f"{spec!r} is a {type(target).__name__}, not a function.")
+        raise CommandError(
+            f"{spec!r} is a {type(target).__name__}, not a function; name a function "
+            "loss(params, *data) as MODULE:FUNCTION."
+        )
     return target
 
 

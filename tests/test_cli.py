@@ -6,6 +6,7 @@ import json
 import subprocess
 import sys
 import textwrap
+import zipfile
 
 import numpy as np
 import pytest
@@ -144,7 +145,12 @@ def test_bad_files_give_one_line_errors(user_dir, capsys):
     np.savez(folder / "objects.npz", w=np.array([{"a": 1}], dtype=object))
     expect_bad([*base, "objects.npz"], capsys, "object (pickled) arrays")
     ok = ["report", fn, "--params", "params.json", "--out", "r.html", "--data"]
-    expect_bad([*ok, "missing.npz"], capsys, "data file 'missing.npz' does not exist")
+    expect_bad(
+        [*ok, "missing.npz"], capsys, "data file 'missing.npz' does not exist; check the path"
+    )
+    with zipfile.ZipFile(folder / "bare.npz", "w"):
+        pass
+    expect_bad([*ok, "bare.npz"], capsys, "holds no arrays; save them with numpy.savez")
     expect_bad([*ok, "data.npz", "--data-keys", "x,z"], capsys, "--data-keys names ['z']")
     assert not (folder / "r.html").exists()
 
