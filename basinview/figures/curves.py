@@ -11,7 +11,7 @@ from plotly.subplots import make_subplots
 from ..core.descent import Runs
 from ..core.errors import ParameterError
 from .levels import choose_levels
-from .paths import draw_indices, group_runs, select_runs
+from .paths import colour_note, draw_indices, group_runs, select_runs
 from .style import DIVERGED, NOT_CONVERGED, OKABE_ITO, add_note, base_layout, uid
 
 __all__ = ["REGIME_COLOURS", "loss_curves_figure", "step_size_figure"]
@@ -109,6 +109,8 @@ def loss_curves_figure(
         notes.append(
             f"Showing {drawn.size} of {drawn.size + left_out} runs (max_paths={max_paths})."
         )
+    if colour_note(groups):
+        notes.append(colour_note(groups).split(":")[0] + "; hover or the legend tells them apart.")
     n_div = int(np.sum(np.asarray(runs.status)[drawn] == "diverged"))
     if n_div:
         notes.append(

@@ -16,11 +16,13 @@ import numpy as np
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
-from .style import DIVERGED, NOT_CONVERGED, category_colour
+from .style import CATEGORY_COLOURS, DIVERGED, NOT_CONVERGED, category_colour
 
 __all__ = [
     "COLOR_BY",
+    "CYCLE_SYMBOLS",
     "PathGroup",
+    "colour_note",
     "draw_indices",
     "group_runs",
     "select_runs",
@@ -28,6 +30,20 @@ __all__ = [
 ]
 
 COLOR_BY = ("auto", "minimum", "learning_rate", "start", "status")
+
+#: End-marker shapes of the first, second, ... round of the seven category colours.
+CYCLE_SYMBOLS = ("circle", "square", "diamond", "triangle-up", "pentagon")
+
+
+def colour_note(groups: list[PathGroup]) -> str:
+    """A note for figures with more categories than colours (empty otherwise)."""
+    n = sum(g.key not in ("diverged", "stuck") for g in groups)
+    if n <= len(CATEGORY_COLOURS):
+        return ""
+    return (
+        f"{n} groups share {len(CATEGORY_COLOURS)} colours: after every seven the end-marker "
+        "shape changes (circle, square, diamond, ...); hover or the legend tells them apart."
+    )
 
 
 @dataclass(frozen=True)
@@ -109,9 +125,15 @@ def group_runs(
     rest = idx[status[idx] != "diverged"]
     groups: list[PathGroup] = []
 
-    def add(key: str, name: str, members: np.ndarray, colour: str, dash: str = "solid") -> None:
+    def add(key: str, name: str, members: np.ndarray, k: int) -> None:
+        # colours repeat after seven categories; the end-marker shape then changes
         if members.size:
-            groups.append(PathGroup(key, name, colour, dash, "circle", members, int(members.size)))
+            symbol = CYCLE_SYMBOLS[(k // len(CATEGORY_COLOURS)) % len(CYCLE_SYMBOLS)]
+            groups.append(
+                PathGroup(
+                    key, name, category_colour(k), "solid", symbol, members, int(members.size)
+                )
+            )
 
     if color_by == "minimum":
         assignment = np.asarray(minima.assignment)
@@ -124,7 +146,7 @@ def group_runs(
         for k in range(len(labels)):
             kind = str(minima.kind[k])
             name = f"{labels[k]}: {kind}, loss {_fmt(float(minima.loss[k]))}"
-            add(f"m{k}", name, rest[assignment[rest] == k], category_colour(k))
+            add(f"m{k}", name, rest[assignment[rest] == k], k)
         stuck = rest[assignment[rest] < 0]
         diverged = np.union1d(diverged, idx[assignment[idx] == -1])
         stuck = np.setdiff1d(stuck, diverged)
@@ -146,14 +168,14 @@ def group_runs(
                 f"lr{k}",
                 f"learning rate {_fmt(float(lr))}",
                 rest[lrs[rest] == lr],
-                category_colour(k),
+                k,
             )
     elif color_by == "start":
         starts = np.asarray(runs.start_index)
         for k, s in enumerate(np.unique(starts[rest])):
-            add(f"s{s}", f"start {s}", rest[starts[rest] == s], category_colour(k))
+            add(f"s{s}", f"start {s}", rest[starts[rest] == s], k)
     else:  # status
-        add("converged", "converged", rest[status[rest] == "converged"], category_colour(2))
+        add("converged", "converged", rest[status[rest] == "converged"], 2)
         stuck = rest[status[rest] == "max_steps"]
         if stuck.size:
             groups.append(

@@ -18,7 +18,7 @@ from ..core.errors import ParameterError
 from ..core.planes import Plane
 from ..core.surface import Surface
 from .levels import Levels, choose_levels
-from .paths import PathGroup, group_runs, select_runs, stack_paths
+from .paths import PathGroup, colour_note, group_runs, select_runs, stack_paths
 from .style import SURFACE_SCALE, add_note, base_layout, uid
 
 __all__ = ["coordinate_shift", "relief_figure", "slice_caution", "slice_figure"]
@@ -332,6 +332,8 @@ def slice_figure(
                 f"Showing {drawn.size} of {drawn.size + left_out} runs (max_paths={max_paths}); "
                 "every group keeps at least one run."
             )
+        if colour_note(groups):
+            notes.append(colour_note(groups))
     if minima is not None:
         _minima_trace(fig, minima, plane, "slice")
     caution = slice_caution(plane, runs, drawn)
