@@ -542,3 +542,17 @@ def test_auto_colours_fall_back_when_no_run_reached_a_point(bowl_view):
     only = [t for t in forced.data if t.uid.startswith("slice-path-")]
     assert [t.name for t in only] == [NOT_CONVERGED["name"]]
     assert only[0].line.dash == NOT_CONVERGED["dash"]
+
+
+def test_more_groups_than_colours_change_the_end_marker_shape(bowl_view):
+    prob, plane, surface, _ = bowl_view
+    starts = np.stack([np.linspace(-1.5, 1.5, 9), np.full(9, 1.0)], axis=1).astype(np.float32)
+    runs = core.descend(prob, starts, learning_rate=0.1, steps=5, plane=plane)
+    fig = F.slice_figure(surface, runs, color_by="start")
+    ends = {t.uid: t for t in fig.data if t.uid.startswith("slice-end-s")}
+    assert len(ends) == 9
+    assert ends["slice-end-s0"].marker.symbol == "circle"
+    assert ends["slice-end-s7"].marker.symbol == "square"
+    assert ends["slice-end-s7"].marker.color == ends["slice-end-s0"].marker.color
+    notes = " ".join(a.text for a in fig.layout.annotations)
+    assert "9 groups share 7 colours" in notes
