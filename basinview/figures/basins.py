@@ -9,7 +9,8 @@ import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
 from ..core.surface import Profile, Surface
-from .slices import _minima_trace, shift_traces, slice_caution
+from .overlays import add_critical_points, shift_traces
+from .slices import slice_caution
 from .style import DIVERGED, NOT_CONVERGED, add_note, base_layout, category_colour, uid
 
 __all__ = ["basin_figure", "profile_figure"]
@@ -134,7 +135,7 @@ def basin_figure(
                 uid=uid("basins", "contours"),
             )
         )
-    _minima_trace(fig, minima, plane, "basins")
+    add_critical_points(fig, minima, plane, "basins")
     notes = []
     caution = slice_caution(plane)
     if caution:

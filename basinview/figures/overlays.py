@@ -1,0 +1,220 @@
+"""Drawing on a plane: descent paths, their ends and starts, critical points.
+
+Shared by the slice and basin figures. Plane coordinates ``(a, b)`` are
+offsets along the plane's directions; on a plane of two named coordinates
+:func:`coordinate_shift` turns them into the parameters' own values.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import plotly.graph_objects as go
+
+from ..core.descent import Runs
+from ..core.errors import ParameterError
+from ..core.planes import Plane
+from .paths import PathGroup, stack_paths
+from .style import uid
+
+__all__ = [
+    "PATH_HOVER",
+    "add_critical_points",
+    "add_paths",
+    "check_runs_plane",
+    "coordinate_shift",
+    "shift_traces",
+]
+
+PATH_HOVER = (
+    "run %{customdata[0]}<br>step %{customdata[1]}<br>loss %{customdata[2]:.5g}"
+    "<br>off-plane distance %{customdata[3]:.3g}<extra>%{fullData.name}</extra>"
+)
+
+
+def _same_plane(p: Plane | None, q: Plane) -> bool:
+    if p is None:
+        return False
+    if p is q:
+        return True
+    return all(
+        np.allclose(np.asarray(x, np.float64), np.asarray(y, np.float64), rtol=1e-6, atol=1e-12)
+        for x, y in ((p.origin, q.origin), (p.d1, q.d1), (p.d2, q.d2))
+    )
+
+
+def check_runs_plane(runs: Runs, plane: Plane) -> None:
+    """Raise unless ``runs`` were recorded on ``plane`` (paths are projections on it)."""
+    if not _same_plane(runs.plane, plane):
+        raise ParameterError(
+            "the runs were recorded on another plane than the surface's, so their paths "
+            "cannot be drawn on it. Run descend(..., plane=surface.plane)."
+        )
+
+
+def coordinate_shift(plane: Plane) -> tuple[float, float]:
+    """Offsets that turn plane coordinates into parameter values, for axes planes.
+
+    On a plane of two named coordinates, ``a`` and ``b`` are offsets from the
+    origin; adding the origin's values makes the axes read in the
+    parameters' own values. Other planes have no such reading: ``(0, 0)``.
+    """
+    if plane.spec.get("kind") != "axes":
+        return 0.0, 0.0
+    i = int(np.argmax(np.abs(plane.d1)))
+    j = int(np.argmax(np.abs(plane.d2)))
+    return float(plane.origin[i]), float(plane.origin[j])
+
+
+def shift_traces(fig: go.Figure, plane: Plane) -> None:
+    """Move every trace and axis range of ``fig`` by :func:`coordinate_shift`."""
+    sa, sb = coordinate_shift(plane)
+    if sa == 0 and sb == 0:
+        return
+    for trace in fig.data:
+        if trace.x is not None:
+            trace.x = np.asarray(trace.x, dtype=np.float64) + sa
+        if trace.y is not None:
+            trace.y = np.asarray(trace.y, dtype=np.float64) + sb
+    if fig.layout.xaxis.range is not None:
+        fig.layout.xaxis.range = [v + sa for v in fig.layout.xaxis.range]
+    if fig.layout.yaxis.range is not None:
+        fig.layout.yaxis.range = [v + sb for v in fig.layout.yaxis.range]
+
+
+def _end_points(runs: Runs, group: PathGroup, bounds: tuple[float, float, float, float]):
+    """Last drawn point of each run that lies inside ``bounds`` (for end markers)."""
+    a0, a1, b0, b1 = bounds
+    xs, ys, custom = [], [], []
+    for r in group.runs:
+        path = np.asarray(runs.trajectory(r), dtype=np.float64)
+        inside = np.isfinite(path).all(axis=1)
+        inside &= (path[:, 0] >= a0) & (path[:, 0] <= a1) & (path[:, 1] >= b0) & (path[:, 1] <= b1)
+        last = np.flatnonzero(inside)
+        if last.size == 0:
+            continue
+        k = int(last[-1])
+        xs.append(path[k, 0])
+        ys.append(path[k, 1])
+        custom.append([r, k, float(runs.losses[r, k]), float(runs.off_plane[r, k])])
+    return np.array(xs), np.array(ys), np.array(custom).reshape(-1, 4)
+
+
+def add_paths(
+    fig: go.Figure,
+    runs: Runs,
+    groups: list[PathGroup],
+    bounds: tuple[float, float, float, float],
+    max_points: int,
+) -> None:
+    # Diverged runs first (underneath), thin and grey: they zig-zag across the view.
+    order = sorted(range(len(groups)), key=lambda i: groups[i].key != "diverged")
+    rank = {groups[i].key: 10 + i for i in range(len(groups))}
+    groups = [groups[i] for i in order]
+    stacks = [stack_paths(runs, g.runs, max_points=max_points) for g in groups]
+    # A white casing under the other paths keeps them readable on dark and light colours.
+    cased = [s for g, s in zip(groups, stacks) if g.key != "diverged"]
+    if cased:
+        fig.add_trace(
+            go.Scatter(
+                x=np.concatenate([s["x"] for s in cased]),
+                y=np.concatenate([s["y"] for s in cased]),
+                mode="lines",
+                line={"color": "rgba(255,255,255,0.85)", "width": 4.5},
+                hoverinfo="skip",
+                showlegend=False,
+                uid=uid("slice", "casing"),
+            )
+        )
+    for g, s in zip(groups, stacks):
+        thin = g.key == "diverged"
+        fig.add_trace(
+            go.Scatter(
+                x=s["x"],
+                y=s["y"],
+                customdata=s["custom"],
+                mode="lines",
+                name=g.name,
+                legendgroup=g.key,
+                legendrank=rank[g.key],
+                opacity=0.75 if thin else 1.0,
+                line={"color": g.colour, "width": 1.2 if thin else 2, "dash": g.dash},
+                hovertemplate=PATH_HOVER,
+                uid=uid("slice", "path", g.key),
+            )
+        )
+    for g in groups:
+        ex, ey, ec = _end_points(runs, g, bounds)
+        fig.add_trace(
+            go.Scatter(
+                x=ex,
+                y=ey,
+                customdata=ec,
+                mode="markers",
+                name=f"{g.name} (end)",
+                legendgroup=g.key,
+                showlegend=False,
+                marker={
+                    "symbol": g.end_symbol,
+                    "size": 11 if g.key == "diverged" else 9,
+                    "color": g.colour,
+                    "line": {"color": g.colour if g.key == "diverged" else "white", "width": 1.5},
+                },
+                hovertemplate="end of run: " + PATH_HOVER,
+                uid=uid("slice", "end", g.key),
+            )
+        )
+    drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
+    fig.add_trace(
+        go.Scatter(
+            x=runs.path[drawn, 0, 0],
+            y=runs.path[drawn, 0, 1],
+            customdata=np.stack(
+                [drawn, np.zeros_like(drawn), runs.losses[drawn, 0], runs.off_plane[drawn, 0]],
+                axis=1,
+            ),
+            mode="markers",
+            name="start",
+            legendrank=1000,
+            marker={
+                "symbol": "circle",
+                "size": 8,
+                "color": "white",
+                "line": {"color": "#2B2B2B", "width": 1.5},
+            },
+            hovertemplate="start: " + PATH_HOVER,
+            uid=uid("slice", "start"),
+        )
+    )
+
+
+def add_critical_points(fig: go.Figure, minima: Any, plane: Plane, figure: str) -> None:
+    a, b, off = plane.project(np.asarray(minima.points, dtype=np.float64))
+    labels = list(minima.labels)
+    custom = np.stack([np.asarray(minima.loss, np.float64), off], axis=1)
+    kinds = [str(k) for k in minima.kind]
+    fig.add_trace(
+        go.Scatter(
+            x=a,
+            y=b,
+            text=labels,
+            customdata=custom,
+            hovertext=[f"{lab}: {kind}" for lab, kind in zip(labels, kinds)],
+            mode="markers+text",
+            textposition="top right",
+            textfont={"size": 14, "color": "#111111"},
+            name="critical points found",
+            marker={
+                "symbol": ["star" if k == "minimum" else "diamond-tall" for k in kinds],
+                "size": 15,
+                "color": "white",
+                "line": {"color": "#111111", "width": 1.5},
+            },
+            hovertemplate=(
+                "%{hovertext}<br>loss %{customdata[0]:.5g}<br>off-plane distance "
+                "%{customdata[1]:.3g}<extra></extra>"
+            ),
+            uid=uid(figure, "critical-points"),
+        )
+    )
