@@ -444,73 +444,49 @@ def _report(args: argparse.Namespace) -> int:
     return 0
 
 
+_FORCE = ("--force", {"action": "store_true", "help": "replace a file that is not a report"})
+_DEMO_OPTIONS: tuple[tuple[str, dict[str, Any]], ...] = (
+    ("--starts", {"type": int, "default": 12, "help": "random starts (default 12)"}),
+    ("--seed", {"type": int, "default": 0, "help": "seed of the starts (default 0)"}),
+    ("--out", {"default": "basinview-demo.html", "help": "report file (./basinview-demo.html)"}),
+    _FORCE,
+)
+_REPORT_OPTIONS: tuple[tuple[str, dict[str, Any]], ...] = (
+    ("function", {"metavar": "MODULE:FUNCTION", "help": "loss(params, *data) to analyse"}),
+    ("--params", {"required": True, "metavar": "FILE", "help": "parameters (.npz or .json)"}),
+    ("--data", {"metavar": "FILE.npz", "help": "arrays passed to the loss after the params"}),
+    ("--data-keys", {"metavar": "K1,K2", "help": "order of the data arrays (default: sorted)"}),
+    (
+        "--out",
+        {"default": "basinview-report.html", "help": "report file (./basinview-report.html)"},
+    ),
+    _FORCE,
+    ("--plane", {"metavar": "X,Y", "help": "two parameter labels (default: a random plane)"}),
+    ("--span", {"default": "1", "help": "half-width s, 'sa,sb' or 'a0,a1,b0,b1' (default 1)"}),
+    ("--resolution", {"type": int, "default": 61, "help": "grid points per axis (default 61)"}),
+    ("--learning-rate", {"default": "0.01", "help": "rate(s), comma-separated (default 0.01)"}),
+    ("--optimizer", {"default": "gradient_descent", "help": "update rule (gradient_descent)"}),
+    ("--steps", {"type": int, "default": 500, "help": "step budget per run (default 500)"}),
+    ("--starts", {"type": int, "default": 12, "help": "random starts on the plane (default 12)"}),
+    ("--seed", {"type": int, "default": 0, "help": "seed of the plane and starts (default 0)"}),
+    ("--basin-resolution", {"type": int, "default": 21, "help": "basin grid; 0 skips (21)"}),
+    ("--sweep-rates", {"type": int, "default": 12, "help": "rates in the sweep; 0 skips (12)"}),
+    ("--title", {"help": "report title"}),
+)
+
+
 def _parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="basinview", description=__doc__.splitlines()[0])
-    parser.add_argument(
-        "--traceback", action="store_true", help="show tracebacks of internal errors"
-    )
+    parser.add_argument("--traceback", action="store_true", help="show internal tracebacks")
     sub = parser.add_subparsers(dest="command", required=True)
-    demo = sub.add_parser("demo", help="run the embedded demo scenario and write a report")
-    demo.add_argument("--starts", type=int, default=12, help="number of random starts (default 12)")
-    demo.add_argument("--seed", type=int, default=0, help="seed of the random starts (default 0)")
-    demo.add_argument(
-        "--out", default="basinview-demo.html", help="report file (default ./basinview-demo.html)"
-    )
-    demo.add_argument(
-        "--force",
-        action="store_true",
-        help="replace an existing file that is not a basinview report",
-    )
-    demo.set_defaults(func=_demo)
-    rep = sub.add_parser("report", help="analyse your own loss MODULE:FUNCTION and write a report")
-    rep.add_argument("function", metavar="MODULE:FUNCTION", help="loss(params, *data) to analyse")
-    rep.add_argument("--params", required=True, metavar="FILE", help="parameters (.npz or .json)")
-    rep.add_argument("--data", metavar="FILE.npz", help="data arrays passed after the parameters")
-    rep.add_argument(
-        "--data-keys", metavar="K1,K2", help="order of the data arrays (default: sorted keys)"
-    )
-    rep.add_argument(
-        "--out",
-        default="basinview-report.html",
-        help="report file (default ./basinview-report.html)",
-    )
-    rep.add_argument(
-        "--force",
-        action="store_true",
-        help="replace an existing file that is not a basinview report",
-    )
-    rep.add_argument(
-        "--plane", metavar="X,Y", help="two parameter labels (default: a random plane)"
-    )
-    rep.add_argument(
-        "--span", default="1", help="half-width s, 'sa,sb' or 'a0,a1,b0,b1' (default 1)"
-    )
-    rep.add_argument("--resolution", type=int, default=61, help="grid points per axis (default 61)")
-    rep.add_argument(
-        "--learning-rate", default="0.01", help="learning rate(s), comma-separated (default 0.01)"
-    )
-    rep.add_argument(
-        "--optimizer", default="gradient_descent", help="update rule (default gradient_descent)"
-    )
-    rep.add_argument("--steps", type=int, default=500, help="step budget per run (default 500)")
-    rep.add_argument(
-        "--starts", type=int, default=12, help="random starts on the plane (default 12)"
-    )
-    rep.add_argument("--seed", type=int, default=0, help="seed of the plane and starts (default 0)")
-    rep.add_argument(
-        "--basin-resolution",
-        type=int,
-        default=21,
-        help="basin map grid per axis; 0 skips it (default 21)",
-    )
-    rep.add_argument(
-        "--sweep-rates",
-        type=int,
-        default=12,
-        help="learning rates in the step-size sweep; 0 skips it (default 12)",
-    )
-    rep.add_argument("--title", help="report title")
-    rep.set_defaults(func=_report)
+    for name, options, func, text in (
+        ("demo", _DEMO_OPTIONS, _demo, "run the embedded demo scenario and write a report"),
+        ("report", _REPORT_OPTIONS, _report, "analyse your own loss and write a report"),
+    ):
+        command = sub.add_parser(name, help=text)
+        for flag, kwargs in options:
+            command.add_argument(flag, **kwargs)
+        command.set_defaults(func=func)
     return parser
 
 
