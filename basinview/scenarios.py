@@ -7,19 +7,41 @@ reference data: tests check basinview against outside sources instead.
   four receivers standing almost on a line. The least-squares loss has two
   minima, mirror images across the line of receivers, and a saddle between
   them: which one gradient descent finds depends on where it starts.
+* :func:`twin_gauges`: predict a flow from two gauges that read almost the
+  same thing on different scales. Two coupled parameters, a long narrow
+  quadratic valley: the classic setting for step-size trouble.
+* :func:`wavy_band`: a small tanh network (1185 parameters by default)
+  separating two classes of points by a wavy boundary, with the data
+  generator :func:`wavy_band_data` and the model functions
+  :func:`mlp_init`, :func:`mlp_apply` and :func:`mlp_loss`.
 """
 
 from __future__ import annotations
 
+import functools
+import itertools
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .core import Problem
+from .core import ParameterError, Problem
 
-__all__ = ["Scenario", "beacon", "beacon_loss"]
+__all__ = [
+    "Scenario",
+    "beacon",
+    "beacon_loss",
+    "gauges_loss",
+    "mlp_apply",
+    "mlp_init",
+    "mlp_loss",
+    "twin_gauges",
+    "wavy_band",
+    "wavy_band_data",
+]
 
 
 @dataclass(frozen=True, eq=False)
@@ -80,4 +102,150 @@ def beacon(seed: int = 2026, noise: float = 0.05) -> Scenario:
         learning_rates=(0.02, 0.2, 0.9, 1.3),
         steps=400,
         extras={"receivers": receivers, "ranges": ranges, "true_position": true},
+    )
+
+
+def gauges_loss(
+    params: dict[str, jnp.ndarray], readings: jnp.ndarray, flow: jnp.ndarray
+) -> jnp.ndarray:
+    """Mean squared error of the linear prediction ``a * gauge1 + b * gauge2``."""
+    predicted = params["a"] * readings[:, 0] + params["b"] * readings[:, 1]
+    return jnp.mean((predicted - flow) ** 2)
+
+
+def twin_gauges(
+    seed: int = 7,
+    n: int = 200,
+    correlation: float = 0.95,
+    scale: float = 2.0,
+    noise: float = 0.3,
+) -> Scenario:
+    """Predict a flow from two gauges on the same pipe: a long, narrow, tilted valley.
+
+    Both gauges respond to the same fluctuations, so their readings are
+    correlated (``correlation``); the second reads on a scale ``scale``
+    times larger. The flow is ``1.5 * gauge1 - 0.5 * gauge2`` plus noise.
+    The loss is an exact quadratic in ``(a, b)`` whose Hessian
+    ``2 X^T X / n`` has very different eigenvalues (condition number about
+    54 with the defaults): one step size cannot suit both directions.
+    """
+    if not -1 < correlation < 1:
+        raise ParameterError(f"correlation must be strictly between -1 and 1; got {correlation!r}.")
+    if n < 3:
+        raise ParameterError(f"n must be at least 3 readings; got {n!r}.")
+    rng = np.random.default_rng(seed)
+    common = rng.standard_normal(n)
+    own = rng.standard_normal(n)
+    gauge1 = common
+    gauge2 = scale * (correlation * common + np.sqrt(1 - correlation**2) * own)
+    readings = np.stack([gauge1, gauge2], axis=1)
+    true = np.array([1.5, -0.5])
+    flow = readings @ true + noise * rng.standard_normal(n)
+    problem = Problem(gauges_loss, {"a": 0.0, "b": 0.0}, readings, flow, name="gauges_loss")
+    return Scenario(
+        name="twin_gauges",
+        description=(
+            f"{n} readings of two gauges on one pipe (correlation {correlation}, the second "
+            f"on a {scale}x scale) and the measured flow (noise {noise}, seed {seed}). Fit "
+            "flow = a * gauge1 + b * gauge2 by least squares. The correlated, differently "
+            "scaled gauges make the loss a long narrow valley."
+        ),
+        problem=problem,
+        plane_axes=("a", "b"),
+        plane_origin={"a": 0.0, "b": 0.0},
+        span=((-2.5, 5.5), (-3.0, 2.0)),
+        resolution=81,
+        learning_rates=(0.02, 0.2, 0.22, 0.24),
+        steps=500,
+        extras={"readings": readings, "flow": flow, "true_coefficients": true},
+    )
+
+
+def wavy_band_data(seed: int = 3, n: int = 256, amplitude: float = 0.8) -> tuple[Any, Any]:
+    """Points in the square ``[-2, 2]^2`` labelled 1 above the curve ``amplitude * sin(1.8 x)``.
+
+    Returns ``(inputs, labels)`` as float32 arrays of shapes ``(n, 2)`` and ``(n,)``.
+    """
+    if n < 2:
+        raise ParameterError(f"n must be at least 2 points; got {n!r}.")
+    rng = np.random.default_rng(seed)
+    inputs = rng.uniform(-2.0, 2.0, size=(n, 2))
+    labels = inputs[:, 1] > amplitude * np.sin(1.8 * inputs[:, 0])
+    return inputs.astype(np.float32), labels.astype(np.float32)
+
+
+def mlp_init(key: jax.Array, widths: Sequence[int] = (2, 32, 32, 1)) -> dict[str, Any]:
+    """Parameters of a tanh network: ``{"layer1": {"w", "b"}, ...}``.
+
+    Weights are ``(inputs, outputs)`` matrices drawn from ``N(0, 1 / inputs)``
+    (common practice for tanh units); biases start at zero.
+    """
+    widths = tuple(int(w) for w in widths)
+    if len(widths) < 2 or min(widths) < 1:
+        raise ParameterError(
+            f"widths needs at least an input and an output width >= 1; got {widths}."
+        )
+    keys = jax.random.split(key, len(widths) - 1)
+    params = {}
+    for i, (k, (fan_in, fan_out)) in enumerate(zip(keys, itertools.pairwise(widths)), 1):
+        params[f"layer{i}"] = {
+            "w": jax.random.normal(k, (fan_in, fan_out)) / jnp.sqrt(fan_in),
+            "b": jnp.zeros(fan_out),
+        }
+    return params
+
+
+def mlp_apply(params: dict[str, Any], inputs: jnp.ndarray) -> jnp.ndarray:
+    """Output of the network for each row of ``inputs`` (tanh hidden layers, linear output)."""
+    layers = [params[f"layer{i}"] for i in range(1, len(params) + 1)]
+    h = inputs
+    for layer in layers[:-1]:
+        h = jnp.tanh(h @ layer["w"] + layer["b"])
+    out = h @ layers[-1]["w"] + layers[-1]["b"]
+    return out[:, 0] if out.shape[-1] == 1 else out
+
+
+def mlp_loss(
+    params: dict[str, Any], inputs: jnp.ndarray, labels: jnp.ndarray, decay: float = 1e-4
+) -> jnp.ndarray:
+    """Binary cross-entropy of the network's logits plus ``decay * sum(w ** 2)`` over weights."""
+    logits = mlp_apply(params, inputs)
+    cross_entropy = jnp.mean(jax.nn.softplus(logits) - labels * logits)
+    penalty = sum(jnp.sum(layer["w"] ** 2) for layer in params.values())
+    return cross_entropy + decay * penalty
+
+
+def wavy_band(
+    seed: int = 3, n: int = 256, widths: Sequence[int] = (2, 32, 32, 1), decay: float = 1e-4
+) -> Scenario:
+    """A small tanh classifier for points above or below a wavy curve.
+
+    With the default widths ``2-32-32-1`` the network has 1185 parameters,
+    far too many to look at two at a time: view it on normalised random
+    planes or the Hessian plane around a trained solution. The problem's
+    reference parameters are the initialiser's draw for ``seed``;
+    ``extras["init"]`` draws more starts (``init(key) -> params``).
+    """
+    inputs, labels = wavy_band_data(seed=seed, n=n)
+    init = functools.partial(mlp_init, widths=tuple(widths))
+    params0 = init(jax.random.key(seed))
+    loss = functools.partial(mlp_loss, decay=decay)
+    problem = Problem(loss, params0, inputs, labels, name="mlp_loss")
+    n_params = problem.size
+    return Scenario(
+        name="wavy_band",
+        description=(
+            f"{n} points in [-2, 2]^2 (seed {seed}), labelled by whether they lie above the "
+            f"curve 0.8 sin(1.8 x). A tanh network {'-'.join(map(str, widths))} "
+            f"({n_params} parameters) scores each point; the loss is the binary "
+            f"cross-entropy plus {decay} times the squared weights."
+        ),
+        problem=problem,
+        plane_axes=(problem.labels[0], problem.labels[1]),
+        plane_origin=None,
+        span=1.0,
+        resolution=41,
+        learning_rates=(0.003, 0.01, 0.03),
+        steps=2000,
+        extras={"inputs": inputs, "labels": labels, "init": init, "widths": tuple(widths)},
     )
