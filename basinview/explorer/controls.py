@@ -15,8 +15,12 @@ from .state import PLANE_KINDS, ViewState
 
 __all__ = ["Controls", "hyper_control"]
 
-_WIDE = w.Layout(width="300px")
 _STYLE = {"description_width": "110px"}
+
+
+def _wide() -> w.Layout:
+    """A fresh layout per control (a shared Layout would hide them all at once)."""
+    return w.Layout(width="300px")
 
 
 def _log_slider(description: str, value: float, low: float, high: float) -> w.FloatLogSlider:
@@ -31,14 +35,14 @@ def _log_slider(description: str, value: float, low: float, high: float) -> w.Fl
         description=description,
         readout_format=".3g",
         continuous_update=False,
-        layout=_WIDE,
+        layout=_wide(),
         style=_STYLE,
     )
 
 
 def hyper_control(name: str, value: float) -> w.Widget:
     """A control for one hyper-parameter of an update rule (our own ranges)."""
-    common = {"description": name, "continuous_update": False, "layout": _WIDE, "style": _STYLE}
+    common = {"description": name, "continuous_update": False, "layout": _wide(), "style": _STYLE}
     if name in ("momentum", "decay", "b1"):
         return w.FloatSlider(
             value=value, min=0.0, max=0.999, step=0.001, readout_format=".3f", **common
@@ -62,7 +66,7 @@ class Controls:
             options=sorted(set(RULES) | {rule.name}),
             value=rule.name,
             description="optimizer",
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self.learning_rate = _log_slider("learning rate", lr, lr / 1e4, max(lr * 100, 10.0))
@@ -73,7 +77,7 @@ class Controls:
             max=max(2000, 4 * state.steps),
             description="steps",
             continuous_update=False,
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self.n_starts = w.IntSlider(
@@ -82,7 +86,7 @@ class Controls:
             max=max(64, state.n_starts),
             description="random starts",
             continuous_update=False,
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self.start_scale = _log_slider("start spread", state.start_scale, 1e-3, 1e3)
@@ -91,45 +95,45 @@ class Controls:
             min=0,
             max=2**31 - 1,
             description="start seed",
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self.clear_clicks = w.Button(
             description="forget clicked starts",
-            layout=_WIDE,
+            layout=_wide(),
             tooltip="remove the starts added by clicking the map",
         )
         self.plane_kind = w.Dropdown(
             options=list(PLANE_KINDS),
             value=state.plane_kind,
             description="plane",
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self.x_label = w.Dropdown(
             options=labels,
             value=state.x_label or labels[0],
             description="x axis",
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         y_default = state.y_label or (labels[1] if len(labels) > 1 else labels[0])
         self.y_label = w.Dropdown(
-            options=labels, value=y_default, description="y axis", layout=_WIDE, style=_STYLE
+            options=labels, value=y_default, description="y axis", layout=_wide(), style=_STYLE
         )
         self.plane_seed = w.BoundedIntText(
             value=state.plane_seed,
             min=0,
             max=2**31 - 1,
             description="plane seed",
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self.normalise = w.Dropdown(
             options=["filter", "layer", "none"],
             value=state.normalise,
             description="normalise",
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         half = max(abs(v) for pair in state.span for v in pair)
@@ -140,7 +144,7 @@ class Controls:
             max=max(201, state.resolution),
             description="resolution",
             continuous_update=False,
-            layout=_WIDE,
+            layout=_wide(),
             style=_STYLE,
         )
         self._span_value = half

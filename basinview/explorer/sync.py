@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import plotly.graph_objects as go
 
-__all__ = ["source_uids", "sync_figure"]
+__all__ = ["json_safe", "source_uids", "sync_figure"]
 
 _UIDS = "_basinview_source_uids"
 
@@ -33,6 +33,31 @@ def _same(a: Any, b: Any) -> bool:
     return bool(a == b)
 
 
+def json_safe(value: Any) -> Any:
+    """``value`` with NaN and inf replaced by None (strict JSON; plotly draws gaps).
+
+    Widget messages are JSON: a NaN there breaks the message, while plotly.js
+    treats ``null`` in data arrays as a gap, which is what NaN means here.
+    """
+    if isinstance(value, np.ndarray):
+        if value.dtype.kind == "f" and not np.all(np.isfinite(value)):
+            out = value.astype(object)
+            out[~np.isfinite(value)] = None
+            return out
+        if value.dtype == object:
+            return np.array([json_safe(v) for v in value.ravel()], dtype=object).reshape(
+                value.shape
+            )
+        return value
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    if isinstance(value, dict):
+        return {k: json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return type(value)(json_safe(v) for v in value)
+    return value
+
+
 def sync_figure(target: go.FigureWidget, source: go.Figure) -> bool:
     """Make ``target`` show ``source``. Returns True if the traces were replaced.
 
@@ -45,11 +70,11 @@ def sync_figure(target: go.FigureWidget, source: go.Figure) -> bool:
     with target.batch_update():
         if replaced:
             target.data = []
-            target.add_traces(list(source.data))
+            target.add_traces([json_safe(t.to_plotly_json()) for t in source.data])
         else:
             for old, new in zip(target.data, source.data):
                 old_json = old.to_plotly_json()
-                new_json = new.to_plotly_json()
+                new_json = json_safe(new.to_plotly_json())
                 new_json.pop("uid", None)
                 changed = {
                     k: v

@@ -115,10 +115,12 @@ class Explorer:
         state = _initial_state(problem, plane, dict(options))
         self.controls = Controls(problem, state, get_rule(state.optimizer))
         self.status = w.HTML(value="")
+        self.status.add_class("bv-status")
         self.progress = w.IntProgress(
             value=0, min=0, max=4, layout=w.Layout(width="300px", display="none")
         )
         self.main = go.FigureWidget(layout={"height": 560, "width": 720})
+        self.main.add_class("bv-main")
         self.side = go.FigureWidget(layout={"height": 460, "width": 720})
         self.table = w.HTML(layout=w.Layout(display="none", max_height="460px", overflow="auto"))
         self.view = w.ToggleButtons(options=list(SIDE_VIEWS), value="relief", description="view")
@@ -181,6 +183,7 @@ class Explorer:
                     actions,
                 ]
             )
+            self._widget.add_class("bv-explorer")
         return self._widget
 
     def _ipython_display_(self) -> None:

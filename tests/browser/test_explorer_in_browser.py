@@ -1,0 +1,181 @@
+"""End to end: the quickstart notebook's Explorer in JupyterLab, in a real browser.
+
+Starts JupyterLab on 127.0.0.1 (own config dirs, port and token), opens the
+quickstart notebook in Debian's chromium driven by playwright, runs all
+cells through the UI and checks what a user would: the Explorer renders,
+changing the learning rate redraws the paths, clicking the contour adds a
+start, recording puts a snapshot in the notebook, and the snapshot survives
+saving and reopening. Screenshots go to ``artifacts/browser/``.
+
+Run: ``python -m pytest -m browser tests/browser`` (needs /usr/bin/chromium).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import time
+from pathlib import Path
+
+import pytest
+from playwright.sync_api import TimeoutError as PlaywrightTimeout
+from playwright.sync_api import sync_playwright
+
+from .jupyter_server import CHROMIUM, CHROMIUM_ARGS, start_lab
+
+pytestmark = pytest.mark.browser
+
+ROOT = Path(__file__).resolve().parents[2]
+NOTEBOOK = Path(
+    os.environ.get("BASINVIEW_BROWSER_NOTEBOOK", ROOT / "notebooks" / "quickstart.ipynb")
+)
+ARTIFACTS = Path(os.environ.get("BASINVIEW_ARTIFACTS", ROOT / "artifacts")) / "browser"
+TIMEOUT_MS = 120_000
+
+
+def _runs_in_status(page) -> int:
+    text = page.locator(".bv-status").inner_text(timeout=TIMEOUT_MS)
+    match = re.search(r"(\d+) runs", text)
+    assert match, text
+    return int(match.group(1))
+
+
+def _path_shapes(page) -> list[str]:
+    return page.evaluate(
+        """() => {
+            const plot = document.querySelector('.bv-main');
+            if (!plot) return [];
+            return Array.from(plot.querySelectorAll('.scatterlayer path.js-line')).map(p => p.getAttribute('d'));
+        }"""
+    )
+
+
+def _wait(page, condition: str, arg=None, timeout_s: float = 120.0) -> None:
+    """Wait until the JS ``condition`` holds, accepting JupyterLab's kernel dialog if it pops up."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        try:
+            page.wait_for_function(condition, arg=arg, timeout=2000)
+            return
+        except PlaywrightTimeout:
+            dialog = page.locator(".jp-Dialog", has_text="Select Kernel")
+            if dialog.count():
+                dialog.locator("button", has_text="Select").click()
+            if time.monotonic() > deadline:
+                raise
+
+
+KERNEL_IDLE = "() => /\\| Idle/.test(document.querySelector('#jp-main-statusbar').innerText)"
+ALL_RUN = """() => {
+    const prompts = Array.from(document.querySelectorAll('.jp-CodeCell .jp-InputPrompt'));
+    return prompts.length > 0 && prompts.every(p => /\\[\\d+\\]/.test(p.textContent));
+}"""
+
+
+def _recorded_settings(path: Path):
+    """The latest snapshot's Settings, read from the saved notebook's outputs."""
+    from basinview.core import Settings
+
+    notebook = json.loads(path.read_text())
+    for cell in notebook["cells"]:
+        for output in cell.get("outputs", []):
+            text = "".join(output.get("data", {}).get("text/markdown", []))
+            if "basinview snapshots" in text:
+                return Settings.from_json(text.split("```json", 1)[1].split("```", 1)[0])
+    raise AssertionError("no snapshot output in the saved notebook")
+
+
+def test_explorer_in_jupyterlab(tmp_path):
+    if not Path(CHROMIUM).exists():
+        pytest.fail(
+            f"{CHROMIUM} is missing: install Debian's chromium (apt-get install -y chromium)"
+        )
+    ARTIFACTS.mkdir(parents=True, exist_ok=True)
+    server = start_lab(tmp_path, [NOTEBOOK])
+    try:
+        with sync_playwright() as p:
+            context = p.chromium.launch_persistent_context(
+                str(tmp_path / "profile"),
+                executable_path=CHROMIUM,
+                headless=True,
+                args=CHROMIUM_ARGS,
+                viewport={"width": 1500, "height": 1100},
+            )
+            context.set_default_timeout(TIMEOUT_MS)
+            page = context.new_page()
+            try:
+                _scenario(page, server)
+            except Exception:
+                page.screenshot(path=str(ARTIFACTS / "failure.png"), full_page=True)
+                raise
+            finally:
+                context.close()
+    finally:
+        server.stop()
+
+
+def _scenario(page, server) -> None:
+    """What a user does, step by step (screenshots along the way)."""
+    page.goto(server.url(NOTEBOOK.name))
+    page.wait_for_selector(".jp-Notebook .jp-Cell")
+    _wait(page, KERNEL_IDLE)  # the kernel is connected (running earlier drops the request)
+
+    # Run all cells through the menu, then wait until every code cell has run.
+    page.locator(".lm-MenuBar-itemLabel", has_text="Run").first.click()
+    page.locator(".lm-Menu-itemLabel", has_text="Run All Cells").first.click()
+    _wait(page, ALL_RUN, timeout_s=600)
+    widget = page.locator(".bv-explorer").first
+    widget.scroll_into_view_if_needed()
+    page.wait_for_selector(".bv-main .contourlayer")
+    assert page.locator(".bv-explorer .widget-label", has_text="learning rate").first.is_visible()
+    widget.screenshot(path=str(ARTIFACTS / "1-rendered.png"))
+
+    # Changing the learning rate redraws the paths.
+    before = _path_shapes(page)
+    assert before, "no paths drawn"
+    readout = page.locator(
+        ".bv-explorer .widget-slider:has(.widget-label:text-is('learning rate')) .widget-readout"
+    ).first
+    readout.click()
+    page.keyboard.press("Control+A")
+    page.keyboard.type("1.5")
+    page.keyboard.press("Enter")
+    page.wait_for_function(
+        "(old) => { const p = document.querySelector('.bv-main');"
+        " const now = Array.from(p.querySelectorAll('.scatterlayer path.js-line')).map(x => x.getAttribute('d'));"
+        " return JSON.stringify(now) !== JSON.stringify(old); }",
+        arg=before,
+    )
+    widget.screenshot(path=str(ARTIFACTS / "2-learning-rate.png"))
+
+    # Clicking the contour map adds a start and a path.
+    runs = _runs_in_status(page)
+    drag = page.locator(".bv-main .nsewdrag").first
+    drag.scroll_into_view_if_needed()
+    box = drag.bounding_box()
+    page.mouse.click(box["x"] + box["width"] * 0.8, box["y"] + box["height"] * 0.2)
+    page.wait_for_function(
+        "(n) => { const m = document.querySelector('.bv-status').innerText.match(/(\\d+) runs/);"
+        " return m && Number(m[1]) === n + 1; }",
+        arg=runs,
+    )
+    widget.screenshot(path=str(ARTIFACTS / "3-clicked-start.png"))
+
+    # Recording puts a snapshot into the notebook's output.
+    page.locator(".bv-explorer button", has_text="record").first.click()
+    page.wait_for_selector("text=basinview snapshots (1)")
+    page.locator("text=basinview snapshots (1)").first.scroll_into_view_if_needed()
+    page.screenshot(path=str(ARTIFACTS / "4-recorded.png"))
+
+    # Save, then reopen: the recorded settings are still in the notebook.
+    page.locator(".jp-Notebook").first.click(position={"x": 5, "y": 5})
+    page.keyboard.press("Control+S")
+    saved = server.root / NOTEBOOK.name
+    page.wait_for_function("() => !document.querySelector('.jp-mod-dirty')")
+    recorded = _recorded_settings(saved)
+    assert recorded.learning_rate == (pytest.approx(1.5),)
+    page.goto(server.url(NOTEBOOK.name))
+    page.wait_for_selector(".jp-Notebook .jp-Cell")
+    page.wait_for_selector("text=basinview snapshots (1)")
+    page.screenshot(path=str(ARTIFACTS / "5-reopened.png"))
