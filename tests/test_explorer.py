@@ -6,6 +6,7 @@ import json
 import types
 
 import numpy as np
+import plotly.io
 import pytest
 
 from basinview import Explorer
@@ -100,11 +101,11 @@ def test_optimizer_change_rebuilds_hyper_controls(explorer):
 
 def test_bad_value_shows_in_status_and_keeps_the_last_good_view(explorer):
     good_state = explorer.state
-    good_fig = explorer.main.to_plotly_json()
+    good_fig = plotly.io.to_json(explorer.main)
     explorer.controls.x_label.value = "y"  # same as the y axis
     assert "must differ" in explorer.status.value
     assert explorer.state == good_state
-    assert explorer.main.to_plotly_json() == good_fig
+    assert plotly.io.to_json(explorer.main) == good_fig
     assert explorer.controls.x_label.value == "x"  # the control shows the last good value again
     # still usable
     explorer.controls.learning_rate.value = 0.3
