@@ -102,13 +102,43 @@ def uid(figure: str, role: str, index: int | str | None = None) -> str:
     return re.sub(r"[^A-Za-z0-9-]", "-", text)
 
 
+def quiet_template() -> dict[str, Any]:
+    """A small plotly template of our own: white paper, light grid, our colours.
+
+    Much lighter than plotly's bundled templates, which carry defaults for
+    every trace type: building a figure with one of those costs tens of
+    milliseconds, which the Explorer pays on every redraw.
+    """
+    axis = {
+        "gridcolor": "#ECECEC",
+        "linecolor": "#BDBDBD",
+        "zerolinecolor": "#D6D6D6",
+        "ticks": "",
+        "automargin": True,
+        "title": {"standoff": 12},
+    }
+    scene_axis = {"backgroundcolor": "white", "gridcolor": "#E3E3E3", "linecolor": "#BDBDBD", "showbackground": True, "zerolinecolor": "#D6D6D6"}
+    return {
+        "layout": {
+            "colorway": list(CATEGORY_COLOURS),
+            "hovermode": "closest",
+            "hoverlabel": {"align": "left"},
+            "paper_bgcolor": "white",
+            "plot_bgcolor": "white",
+            "xaxis": dict(axis),
+            "yaxis": dict(axis),
+            "scene": {"xaxis": dict(scene_axis), "yaxis": dict(scene_axis), "zaxis": dict(scene_axis)},
+        }
+    }
+
+
 def base_layout(title: str | None, subtitle: str | None = None, **extra: Any) -> dict[str, Any]:
     """Layout shared by all figures: white paper, quiet grid, left-aligned title."""
     text = title or ""
     if subtitle:
         text = f"{text}<br><span style='font-size:12px;color:{_NOTE}'>{subtitle}</span>"
     layout: dict[str, Any] = {
-        "template": "plotly_white",
+        "template": quiet_template(),
         "font": {"family": _FONT, "size": 13, "color": _INK},
         "title": {"text": text, "x": 0.01, "xanchor": "left", "y": 0.97, "yanchor": "top"},
         "margin": {"l": 70, "r": 30, "t": 80 if subtitle else 60, "b": 100},
