@@ -154,10 +154,21 @@ def hessian_spectrum(
     if method not in ("auto", "exact", "lanczos"):
         raise ParameterError(f"method must be 'auto', 'exact' or 'lanczos'; got {method!r}.")
     point = _point(problem, theta)
+    value = float(problem.value(point))
+    if not np.isfinite(value):
+        raise ParameterError(
+            f"the loss is {value} at this point, so its curvature means nothing there (a "
+            "NaN branch of jnp.where even has a zero Hessian); choose a point where the "
+            "loss is finite, e.g. a converged run's end point."
+        )
     if method == "exact" or (method == "auto" and n <= EXACT_LIMIT):
         h = hessian_matrix(problem, point)
         if not np.all(np.isfinite(h)):
-            raise ParameterError("the Hessian is not finite at this point.")
+            raise ParameterError(
+                "the Hessian is not finite at this point (the loss or its derivatives are "
+                "NaN or inf there); choose a point where the loss is finite, e.g. a "
+                "converged run's end point."
+            )
         vals, vecs = np.linalg.eigh(h)
         order = np.argsort(vals)[::-1][:k]
         return Spectrum(vals[order], vecs[:, order].T, float(vals[0]), "exact")
@@ -169,7 +180,10 @@ def hessian_spectrum(
 
     vals, ritz = _lanczos(matvec, n, steps, seed)
     if not np.all(np.isfinite(vals)):
-        raise ParameterError("Hessian-vector products are not finite at this point.")
+        raise ParameterError(
+            "Hessian-vector products are not finite at this point; choose a point where "
+            "the loss is finite, e.g. a converged run's end point."
+        )
     order = np.argsort(vals)[::-1][:k]
     vecs = ritz[order]
     vecs /= np.linalg.norm(vecs, axis=1, keepdims=True)

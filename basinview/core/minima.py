@@ -254,7 +254,10 @@ def find_minima(
     if ftol is None:
         ftol = 1e-6 if dtype == np.float64 else 1e-3
     if runs.final.shape[1] != problem.size:
-        raise ParameterError("these runs belong to a problem with a different parameter count.")
+        raise ParameterError(
+            f"these runs belong to a problem with {runs.final.shape[1]} parameters; this "
+            f"problem has {problem.size}. Pass the problem the runs were made with."
+        )
     n_runs = len(runs)
     assignment = np.where(runs.status == "diverged", DIVERGED_LABEL, NOT_CONVERGED_LABEL).astype(
         np.int64

@@ -14,11 +14,13 @@ from __future__ import annotations
 
 import inspect
 import math
+import numbers
 from collections.abc import Callable, Mapping
 from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 import optax
 
 from .errors import ParameterError
@@ -323,18 +325,39 @@ def check_hyper(rule: UpdateRule, hyper: Mapping[str, Any]) -> dict[str, list[fl
         elif hname in rule.defaults:
             raw = rule.defaults[hname]
         else:
-            raise ParameterError(f"{rule.title} needs a value for {hname!r}.")
-        values = (
-            [raw] if isinstance(raw, (int, float)) or getattr(raw, "ndim", 1) == 0 else list(raw)
-        )
+            raise ParameterError(
+                f"{rule.title} needs a value for {hname!r}; pass it as hyper={{{hname!r}: value}}."
+            )
+        scalar = isinstance(raw, (numbers.Number, str, bytes)) or getattr(raw, "ndim", 1) == 0
+        try:
+            values = [raw] if scalar else list(raw)
+        except TypeError:
+            raise ParameterError(
+                f"{hname} must be a number or a list of numbers; got a {type(raw).__name__}."
+            ) from None
         if not values:
-            raise ParameterError(f"{hname} needs at least one value; got an empty list.")
+            raise ParameterError(
+                f"{hname} needs at least one value; got an empty list. Give a number, e.g. "
+                f"{hname}={rule.defaults.get(hname, 0.01)}."
+            )
         floats = []
         for v in values:
+            if isinstance(v, (complex, np.complexfloating)) or (
+                isinstance(v, np.ndarray) and np.iscomplexobj(v)
+            ):
+                raise ParameterError(
+                    f"{hname} must be a real number; got the complex value {v!r}. Use its "
+                    "real part or abs()."
+                )
             try:
+                if isinstance(v, (bool, np.bool_)):
+                    raise TypeError
                 x = float(v)
             except (TypeError, ValueError):
-                raise ParameterError(f"{hname} must be a number; got {v!r}.") from None
+                raise ParameterError(
+                    f"{hname} must be a number; got {v!r}. Write it as a number, e.g. "
+                    f"{hname}={rule.defaults.get(hname, 0.01)}, not as text."
+                ) from None
             bound = rule.bounds.get(hname)
             if not math.isfinite(x) or (bound is not None and not bound.contains(x)):
                 allowed = bound.text() if bound is not None else "finite"

@@ -52,7 +52,8 @@ class Plane:
 
     def __post_init__(self) -> None:
         for name in ("origin", "d1", "d2"):
-            arr = np.asarray(getattr(self, name))
+            # A private copy: freezing must never make the caller's own array read-only.
+            arr = np.array(getattr(self, name), copy=True)
             arr.setflags(write=False)
             object.__setattr__(self, name, arr)
         n = self.origin.shape
@@ -149,7 +150,10 @@ def axes_plane(problem: Problem, x: str, y: str, *, origin: Any = None) -> Plane
     Plane coordinates are then offsets of the two coordinates from the origin.
     """
     if x == y:
-        raise ParameterError(f"the two plane coordinates must differ; got {x!r} twice.")
+        raise ParameterError(
+            f"the two plane coordinates must differ; got {x!r} twice. Choose two "
+            "different labels from problem.labels."
+        )
     i, j = problem.index(x), problem.index(y)
     theta, origin_list = _origin(problem, origin)
     d1 = np.zeros_like(theta)
@@ -241,6 +245,14 @@ def random_plane(
         if normalise != "none":
             d = _normalise(problem, d, theta.astype(np.float64), normalise, zero_bias, filter_axis)
         dirs.append(d.astype(problem.dtype))
+    if normalise != "none" and not all(np.any(d) for d in dirs):
+        biases = " (biases are left out by zero_bias=True)" if zero_bias else ""
+        raise ParameterError(
+            f"normalise={normalise!r} scales each direction to the size of the origin's "
+            f"weights, but the origin is zero in every coordinate the plane would move"
+            f"{biases}, so the directions are zero. Use normalise='none', or pass an "
+            "origin with non-zero weights (e.g. initialised or trained parameters)."
+        )
     spec = {
         "kind": "random",
         "seed": seed,
@@ -272,7 +284,8 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     ortho = e2 - (e2 @ d1) / n1**2 * d1
     if np.linalg.norm(ortho) <= 100 * np.finfo(problem.dtype).eps * max(n1, np.linalg.norm(e2)):
         raise ParameterError(
-            "the three points lie on one line (or coincide); they do not define a plane."
+            "the three points lie on one line (or coincide); they do not define a plane. "
+            "Choose a third point off the line through the first two."
         )
     d2 = ortho / np.linalg.norm(ortho) * n1
     spec = {"kind": "through", "points": [[float(x) for x in p] for p in pts]}
@@ -303,30 +316,94 @@ def _check_seed(seed: Any) -> int:
     return int(seed)
 
 
+_SPEC_KEYS = {
+    "axes": {"kind", "x", "y", "origin"},
+    "random": {"kind", "seed", "normalise", "zero_bias", "filter_axis", "origin"},
+    "through": {"kind", "points", "origin"},
+    "hessian": {"kind", "method", "seed", "origin"},
+}
+
+
+_REQUIRED = object()
+
+
+def _spec_error(what: str) -> ParameterError:
+    return ParameterError(
+        f"plane spec: {what} Rebuild the plane with axes_plane, random_plane, through_plane "
+        "or hessian_plane and use its .spec."
+    )
+
+
+def _spec_get(spec: dict[str, Any], key: str, kinds: tuple[type, ...], default: Any) -> Any:
+    if key not in spec:
+        if default is _REQUIRED:
+            raise _spec_error(f"the {spec.get('kind')!r} plane needs the field {key!r}.")
+        return default
+    value = spec[key]
+    if isinstance(value, bool) and bool not in kinds:
+        raise _spec_error(f"field {key!r} must be {kinds[0].__name__}; got {value!r}.")
+    if not isinstance(value, kinds):
+        raise _spec_error(f"field {key!r} must be {kinds[0].__name__}; got {type(value).__name__}.")
+    return value
+
+
+def _spec_vector(problem: Problem, value: Any, what: str) -> np.ndarray:
+    if not isinstance(value, (list, tuple, np.ndarray)):
+        raise _spec_error(f"{what} must be a list of {problem.size} numbers.")
+    try:
+        arr = np.asarray(value, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise _spec_error(f"{what} must be a list of {problem.size} numbers.") from None
+    if arr.shape != (problem.size,):
+        raise _spec_error(
+            f"{what} must be a list of {problem.size} numbers (one per parameter); got shape "
+            f"{arr.shape}."
+        )
+    return arr.astype(problem.dtype)
+
+
 def plane_from_spec(problem: Problem, spec: dict[str, Any]) -> Plane:
-    """Rebuild a plane from its ``spec`` (as stored in Settings)."""
+    """Rebuild a plane from its ``spec`` (as stored in Settings).
+
+    The spec is data: every field is checked for its type before use, and
+    fields that the plane kind does not have are refused.
+    """
+    if not isinstance(spec, dict):
+        raise _spec_error(f"expected an object with a 'kind'; got {type(spec).__name__}.")
     kind = spec.get("kind")
+    if kind not in _SPEC_KEYS:
+        raise ParameterError(
+            f"unknown plane kind {kind!r}; expected one of 'axes', 'random', 'through', "
+            "'hessian'. Rebuild the plane with one of those functions and use its .spec."
+        )
+    unknown = sorted(map(str, set(spec) - _SPEC_KEYS[kind]))
+    if unknown:
+        raise _spec_error(f"the {kind!r} plane has no fields {unknown}.")
     origin = spec.get("origin")
-    origin = None if origin is None else np.asarray(origin, dtype=problem.dtype)
+    origin = None if origin is None else _spec_vector(problem, origin, "'origin'")
     if kind == "axes":
-        return axes_plane(problem, spec["x"], spec["y"], origin=origin)
+        x = _spec_get(spec, "x", (str,), _REQUIRED)
+        y = _spec_get(spec, "y", (str,), _REQUIRED)
+        return axes_plane(problem, x, y, origin=origin)
     if kind == "random":
         return random_plane(
             problem,
-            seed=spec.get("seed", 0),
-            normalise=spec.get("normalise", "filter"),
-            zero_bias=spec.get("zero_bias", True),
-            filter_axis=spec.get("filter_axis", -1),
+            seed=_spec_get(spec, "seed", (int,), 0),
+            normalise=_spec_get(spec, "normalise", (str,), "filter"),
+            zero_bias=_spec_get(spec, "zero_bias", (bool,), True),
+            filter_axis=_spec_get(spec, "filter_axis", (int,), -1),
             origin=origin,
         )
     if kind == "through":
-        pts = [np.asarray(p, dtype=problem.dtype) for p in spec["points"]]
-        if len(pts) != 3:
-            raise ParameterError("a 'through' plane needs exactly three points.")
-        return through_plane(problem, *pts)
-    if kind == "hessian":
-        options = {k: v for k, v in spec.items() if k not in ("kind", "origin")}
-        return hessian_plane(problem, origin=origin, **options)
-    raise ParameterError(
-        f"unknown plane kind {kind!r}; expected one of 'axes', 'random', 'through', 'hessian'."
+        raw = _spec_get(spec, "points", (list,), _REQUIRED)
+        if len(raw) != 3:
+            raise _spec_error("a 'through' plane needs exactly three points.")
+        pts = [_spec_vector(problem, p, f"point {i}") for i, p in enumerate(raw)]
+        plane = through_plane(problem, *pts)
+        return plane if origin is None else plane.with_origin(origin)
+    return hessian_plane(
+        problem,
+        origin=origin,
+        method=_spec_get(spec, "method", (str,), "auto"),
+        seed=_spec_get(spec, "seed", (int,), 0),
     )

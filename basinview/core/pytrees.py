@@ -122,13 +122,15 @@ class Flattener:
             if flat.shape != (self.size,):
                 raise ParameterError(
                     f"{what}: a flat vector must have {self.size} entries (one per "
-                    f"parameter), got shape {flat.shape}."
+                    f"parameter), got shape {flat.shape}. Pass a vector of length "
+                    f"{self.size} (see problem.labels) or a pytree shaped like the "
+                    "initial parameters."
                 )
             return flat.astype(self.dtype)
         leaves, treedef = jax.tree_util.tree_flatten(params)
         if treedef != self.treedef:
             raise ParameterError(
-                f"{what} do not have the structure of the problem's parameters.\n"
+                f"{what}: the structure differs from the problem's parameters.\n"
                 f"  expected: {self.treedef}\n  received: {treedef}\n"
                 "Pass a pytree shaped like the initial parameters, or a flat "
                 f"vector of length {self.size}."
@@ -137,7 +139,8 @@ class Flattener:
             if tuple(np.shape(leaf)) != info.shape:
                 raise ParameterError(
                     f"{what}: leaf {info.name!r} has shape {tuple(np.shape(leaf))}, "
-                    f"expected {info.shape}."
+                    f"expected {info.shape}. Give every leaf the shape it has in the "
+                    "initial parameters (problem.params)."
                 )
         flat = (
             np.concatenate([np.ravel(np.asarray(leaf)) for leaf in leaves])
@@ -148,6 +151,11 @@ class Flattener:
 
     def index(self, label: str) -> int:
         """Flat index of a coordinate given by its label (``"w[0]"``)."""
+        if not isinstance(label, str):
+            raise ParameterError(
+                f"a coordinate label must be a string such as {self.labels[0]!r}; got a "
+                f"{type(label).__name__} ({label!r}). See problem.labels for all of them."
+            )
         try:
             return self.labels.index(label)
         except ValueError:

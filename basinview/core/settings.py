@@ -16,6 +16,7 @@ import json
 import math
 import os
 import platform
+import tempfile
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -24,8 +25,8 @@ from typing import Any
 
 import numpy as np
 
-from .descent import Runs, descend
-from .errors import FingerprintWarning, SettingsError
+from .descent import MAX_STEPS, Runs, descend
+from .errors import FingerprintWarning, ParameterError, SettingsError
 from .planes import Plane, plane_from_spec
 from .problem import Problem
 from .starts import Starts, starts_from_spec
@@ -42,6 +43,19 @@ __all__ = [
 
 SCHEMA_VERSION = 1
 MAX_SETTINGS_BYTES = 64 * 2**20
+MAX_DEPTH = 32
+"""Deepest nesting of objects and lists a settings record may have."""
+MAX_INTEGER = 2**53
+"""Largest integer a settings record may hold (beyond it JSON readers disagree)."""
+MAX_SEED = 2**32 - 1
+"""Largest seed: descent seeds are unsigned 32-bit integers."""
+_REPAIR = "Restore the file from a copy, or record the view again with record_settings()."
+_PICKLE_MAGIC = (b"\x80\x02", b"\x80\x03", b"\x80\x04", b"\x80\x05")
+
+
+def _bad(message: str) -> SettingsError:
+    """A SettingsError for a record that was edited or damaged, with the repair hint."""
+    return SettingsError(f"{message} {_REPAIR}")
 
 
 def library_versions() -> dict[str, str]:
@@ -100,23 +114,41 @@ class Settings:
             return json.dumps(data, indent=indent, allow_nan=False, sort_keys=True)
         except ValueError as exc:
             raise SettingsError(
-                f"settings contain NaN or inf and cannot be written as JSON: {exc}"
+                f"settings contain NaN or inf and cannot be written as JSON ({exc}). Replace "
+                "them with finite values, e.g. dataclasses.replace(settings, grad_tol=1e-6); "
+                "nothing was written."
             ) from None
 
     @classmethod
     def from_json(cls, text: str | bytes, *, problem: Problem | None = None) -> Settings:
         """Parse settings JSON; validate every field. Warns if ``problem`` differs."""
+        if len(text) > MAX_SETTINGS_BYTES:
+            raise SettingsError(
+                f"settings text is {len(text)} bytes; the limit is {MAX_SETTINGS_BYTES}. "
+                "A settings record is a few kilobytes of JSON: pass the text that "
+                "Settings.to_json() or Settings.save() wrote."
+            )
         if isinstance(text, bytes):
+            if text.startswith(_PICKLE_MAGIC):
+                raise SettingsError(
+                    "these bytes look like a Python pickle, not settings JSON; basinview "
+                    "never unpickles. Record the view with record_settings() and save it "
+                    "with Settings.save()."
+                )
             try:
                 text = text.decode("utf-8")
             except UnicodeDecodeError as exc:
-                raise SettingsError(f"settings are not UTF-8 text: {exc}") from None
-        if len(text) > MAX_SETTINGS_BYTES:
-            raise SettingsError(
-                f"settings text is {len(text)} bytes; the limit is {MAX_SETTINGS_BYTES}."
-            )
+                raise SettingsError(
+                    f"settings are not UTF-8 text ({exc}); a settings file is the JSON that "
+                    "Settings.save() writes. " + _REPAIR
+                ) from None
         try:
             raw = json.loads(text, object_pairs_hook=_no_duplicates, parse_constant=_no_constants)
+        except RecursionError:
+            raise _bad(
+                f"settings JSON is nested too deeply (a record nests at most {MAX_DEPTH} "
+                "levels); it was not written by basinview."
+            ) from None
         except json.JSONDecodeError as exc:
             body = text.strip()
             truncated = body.startswith("{") and not body.endswith("}")
@@ -125,9 +157,14 @@ class Settings:
                 if truncated
                 else ""
             )
-            raise SettingsError(
+            raise _bad(
                 f"settings are not valid JSON (line {exc.lineno}, column {exc.colno}: {exc.msg}).{hint}"
             ) from None
+        except SettingsError:
+            raise
+        except ValueError as exc:  # e.g. an integer with thousands of digits
+            raise _bad(f"settings JSON holds a value Python refuses to read ({exc}).") from None
+        _check_tree(raw)
         settings = _from_raw(raw)
         if problem is not None:
             settings.check(problem)
@@ -137,24 +174,66 @@ class Settings:
         """Write the JSON to ``path`` (only there) and return the path."""
         target = Path(path)
         if target.suffix.lower() != ".json":
-            raise SettingsError(f"settings files end in .json; got {str(target)!r}.")
+            raise SettingsError(
+                f"settings files end in .json; got {str(target)!r}. Choose a name like view.json."
+            )
+        if target.is_dir():
+            raise SettingsError(
+                f"{str(target)!r} is a folder; give a file name ending in .json inside it."
+            )
+        if not target.parent.is_dir():
+            raise SettingsError(
+                f"the folder {str(target.parent)!r} does not exist; create it first or choose "
+                "another path."
+            )
         text = self.to_json()
-        tmp = target.with_name(target.name + ".tmp")
-        tmp.write_text(text + "\n", encoding="utf-8")
-        tmp.replace(target)
+        # Write a uniquely named sibling, then rename it over the target: a failed save
+        # leaves the old file (and any file of the user's) exactly as it was.
+        fd, tmp_name = tempfile.mkstemp(
+            prefix=f".{target.name}.", suffix=".partial", dir=target.parent
+        )
+        tmp = Path(tmp_name)
+        try:
+            with os.fdopen(fd, "w", encoding="utf-8") as fh:
+                fh.write(text + "\n")
+            tmp.replace(target)
+        except OSError as exc:
+            tmp.unlink(missing_ok=True)
+            raise SettingsError(
+                f"could not write settings to {str(target)!r} ({exc.strerror or exc}); the "
+                "previous file, if any, is unchanged. Check the path and its permissions."
+            ) from None
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
         return target
 
     @classmethod
     def load(cls, path: str | os.PathLike[str], *, problem: Problem | None = None) -> Settings:
         """Read settings JSON from ``path``."""
         p = Path(path)
+        if p.is_dir():
+            raise SettingsError(
+                f"{str(p)!r} is a folder, not a settings file; give the path of the .json "
+                "file that Settings.save() wrote."
+            )
         if not p.is_file():
-            raise SettingsError(f"no settings file at {str(p)!r}.")
+            raise SettingsError(
+                f"no settings file at {str(p)!r}; check the path (settings are written by "
+                "Settings.save(path))."
+            )
         if p.stat().st_size > MAX_SETTINGS_BYTES:
             raise SettingsError(
-                f"{str(p)!r} is larger than {MAX_SETTINGS_BYTES} bytes; not a settings file."
+                f"{str(p)!r} is larger than {MAX_SETTINGS_BYTES} bytes; not a settings file. "
+                "Give the path of the .json file that Settings.save() wrote."
             )
-        return cls.from_json(p.read_bytes(), problem=problem)
+        try:
+            data = p.read_bytes()
+        except OSError as exc:
+            raise SettingsError(
+                f"cannot read {str(p)!r} ({exc.strerror or exc}); check its permissions."
+            ) from None
+        return cls.from_json(data, problem=problem)
 
     # ------------------------------------------------------------ checks
     def check(self, problem: Problem) -> bool:
@@ -166,7 +245,8 @@ class Settings:
         if problem.size != self.n_params:
             raise SettingsError(
                 f"these settings are for a problem with {self.n_params} parameters; this "
-                f"problem has {problem.size}."
+                f"problem has {problem.size}. Load them with the problem (loss, parameters "
+                "and data) they were recorded for."
             )
         if problem.fingerprint != self.fingerprint:
             warnings.warn(
@@ -196,49 +276,72 @@ def _no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
     out: dict[str, Any] = {}
     for key, value in pairs:
         if key in out:
-            raise SettingsError(
-                f"settings JSON repeats the key {key!r}; the file was edited or corrupted."
-            )
+            raise _bad(f"settings JSON repeats the key {key!r}; the file was edited or corrupted.")
         out[key] = value
     return out
 
 
 def _no_constants(name: str) -> Any:
-    raise SettingsError(f"settings JSON contains {name}, which is not valid JSON.")
+    raise _bad(f"settings JSON contains {name}, which is not valid JSON.")
 
 
 def _expect(raw: dict[str, Any], key: str, kinds: tuple[type, ...], what: str) -> Any:
     value = raw[key]
     if isinstance(value, bool) and bool not in kinds:
-        raise SettingsError(f"settings field {key!r} must be {what}; got {value!r}.")
+        raise _bad(f"settings field {key!r} must be {what}; got {value!r}.")
     if not isinstance(value, kinds):
-        raise SettingsError(
-            f"settings field {key!r} must be {what}; got {type(value).__name__} {value!r}."
-        )
+        raise _bad(f"settings field {key!r} must be {what}; got {type(value).__name__} {value!r}.")
     return value
 
 
 def _number(key: str, value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
-        raise SettingsError(f"settings field {key!r} must hold finite numbers; got {value!r}.")
+        raise _bad(f"settings field {key!r} must hold finite numbers; got {value!r}.")
     return float(value)
 
 
 def _numbers(key: str, value: Any) -> tuple[float, ...]:
     if not isinstance(value, list) or not value:
-        raise SettingsError(
-            f"settings field {key!r} must be a non-empty list of numbers; got {value!r}."
-        )
+        raise _bad(f"settings field {key!r} must be a non-empty list of numbers; got {value!r}.")
     return tuple(_number(key, v) for v in value)
+
+
+def _check_tree(raw: Any) -> None:
+    """Refuse records nested deeper than MAX_DEPTH or holding absurd integers (iteratively)."""
+    stack = [(raw, 1)]
+    while stack:
+        value, depth = stack.pop()
+        if depth > MAX_DEPTH:
+            raise _bad(
+                f"settings JSON is nested deeper than {MAX_DEPTH} levels; it was not written "
+                "by basinview."
+            )
+        if isinstance(value, dict):
+            stack.extend((v, depth + 1) for v in value.values())
+        elif isinstance(value, list):
+            stack.extend((v, depth + 1) for v in value)
+        elif isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_INTEGER:
+            raise _bad(
+                f"settings JSON holds the integer {str(value)[:20]}... ({len(str(abs(value)))} "
+                f"digits), beyond {MAX_INTEGER}; no basinview setting is that large."
+            )
+
+
+def _integer(raw: dict[str, Any], key: str, low: int, high: int) -> int:
+    value = _expect(raw, key, (int,), f"an integer from {low} to {high}")
+    if not low <= value <= high:
+        raise _bad(f"settings field {key!r} must be an integer from {low} to {high}; got {value}.")
+    return value
 
 
 def _from_raw(raw: Any) -> Settings:
     if not isinstance(raw, dict):
-        raise SettingsError(f"settings JSON must be an object; got {type(raw).__name__}.")
+        raise _bad(f"settings JSON must be an object; got {type(raw).__name__}.")
     schema = raw.get("schema")
     if isinstance(schema, bool) or not isinstance(schema, int):
         raise SettingsError(
-            "settings JSON has no integer 'schema' field; this is not a basinview settings record."
+            "settings JSON has no integer 'schema' field; this is not a basinview settings "
+            "record. Load a file written by Settings.save()."
         )
     if schema > SCHEMA_VERSION:
         raise SettingsError(
@@ -246,11 +349,11 @@ def _from_raw(raw: Any) -> Settings:
             f"reads schema {SCHEMA_VERSION}. Upgrade basinview to read them."
         )
     if schema < 1:
-        raise SettingsError(f"settings schema {schema} is not valid.")
+        raise _bad(f"settings schema {schema} is not valid (schemas start at 1).")
     names = {f.name for f in dataclasses.fields(Settings)}
     unknown = sorted(set(raw) - names)
     if unknown:
-        raise SettingsError(
+        raise _bad(
             f"settings JSON has unknown fields {unknown}; it was edited or is not basinview's."
         )
     required = {
@@ -260,42 +363,42 @@ def _from_raw(raw: Any) -> Settings:
     }
     missing = sorted(required - set(raw))
     if missing:
-        raise SettingsError(
-            f"settings JSON lacks the fields {missing}; was it truncated or edited?"
-        )
+        raise _bad(f"settings JSON lacks the fields {missing}; was it truncated or edited?")
     span_raw = _expect(raw, "span", (list,), "[[a_min, a_max], [b_min, b_max]]")
     try:
         span = _ranges(span_raw)
     except Exception as exc:
-        raise SettingsError(f"settings field 'span' is invalid: {exc}") from None
+        raise _bad(f"settings field 'span' is invalid: {exc}") from None
     res_raw = _expect(raw, "resolution", (list,), "[ra, rb]")
     if not all(isinstance(r, int) and not isinstance(r, bool) for r in res_raw):
-        raise SettingsError(f"settings field 'resolution' must hold integers; got {res_raw!r}.")
+        raise _bad(f"settings field 'resolution' must hold integers; got {res_raw!r}.")
     try:
         resolution = _resolution(tuple(res_raw))
     except Exception as exc:
-        raise SettingsError(f"settings field 'resolution' is invalid: {exc}") from None
+        raise _bad(f"settings field 'resolution' is invalid: {exc}") from None
     hyper_raw = _expect(raw, "hyper", (dict,), "an object of lists")
     batch = raw["batch_size"]
     if batch is not None and (isinstance(batch, bool) or not isinstance(batch, int) or batch < 1):
-        raise SettingsError(
+        raise _bad(
             f"settings field 'batch_size' must be null or a positive integer; got {batch!r}."
         )
     steps = _expect(raw, "steps", (int,), "a positive integer")
     if steps < 1:
-        raise SettingsError(f"settings field 'steps' must be positive; got {steps}.")
+        raise _bad(f"settings field 'steps' must be positive; got {steps}.")
+    if steps > MAX_STEPS:
+        raise _bad(f"settings field 'steps' must be at most {MAX_STEPS}; got {steps}.")
     versions = raw.get("versions", {})
     if not isinstance(versions, dict) or not all(isinstance(v, str) for v in versions.values()):
-        raise SettingsError("settings field 'versions' must map names to version strings.")
+        raise _bad("settings field 'versions' must map names to version strings.")
     plane = _expect(raw, "plane", (dict,), "an object")
     starts = _expect(raw, "starts", (dict,), "an object")
     for key, spec in (("plane", plane), ("starts", starts)):
         if not isinstance(spec.get("kind"), str):
-            raise SettingsError(f"settings field {key!r} needs a 'kind' string.")
+            raise _bad(f"settings field {key!r} needs a 'kind' string.")
     return Settings(
         loss_name=_expect(raw, "loss_name", (str,), "a string"),
         fingerprint=_expect(raw, "fingerprint", (str,), "a string"),
-        n_params=_expect(raw, "n_params", (int,), "an integer"),
+        n_params=_integer(raw, "n_params", 1, MAX_INTEGER),
         dtype=_expect(raw, "dtype", (str,), "a string"),
         plane=plane,
         span=span,
@@ -309,7 +412,7 @@ def _from_raw(raw: Any) -> Settings:
         loss_tol=_number("loss_tol", raw["loss_tol"]),
         divergence_factor=_number("divergence_factor", raw["divergence_factor"]),
         batch_size=batch,
-        seed=_expect(raw, "seed", (int,), "an integer"),
+        seed=_integer(raw, "seed", 0, MAX_SEED),
         note=_expect(raw, "note", (str,), "a string") if "note" in raw else "",
         created=_expect(raw, "created", (str,), "a string") if "created" in raw else "",
         versions=dict(versions),
@@ -382,9 +485,15 @@ def compute_view(
             from one.
     """
     settings.check(problem)
-    plane = plane_from_spec(problem, settings.plane)
+    try:
+        plane = plane_from_spec(problem, settings.plane)
+    except ParameterError as exc:
+        raise SettingsError(f"settings field 'plane' cannot be rebuilt: {exc}") from None
     surface = evaluate_surface(problem, plane, span=settings.span, resolution=settings.resolution)
-    starts = starts_from_spec(problem, settings.starts, plane=plane, initializers=initializers)
+    try:
+        starts = starts_from_spec(problem, settings.starts, plane=plane, initializers=initializers)
+    except ParameterError as exc:
+        raise SettingsError(f"settings field 'starts' cannot be rebuilt: {exc}") from None
     runs = descend(
         problem,
         starts,

@@ -122,7 +122,10 @@ def step_size_sweep(
     """
     rates = np.asarray(sorted({float(r) for r in np.ravel(learning_rates)}), dtype=np.float64)
     if rates.size == 0:
-        raise ParameterError("learning_rates needs at least one value.")
+        raise ParameterError(
+            "learning_rates needs at least one value; give a list of positive rates, e.g. "
+            "learning_rates=numpy.geomspace(1e-3, 1.0, 13)."
+        )
     if any(np.ndim(v) != 0 for v in (hyper or {}).values()):
         raise ParameterError(
             "a step-size sweep fixes one value per other hyper-parameter; sweep them separately."
