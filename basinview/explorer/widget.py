@@ -73,6 +73,8 @@ def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewStat
     from .state import as_span
 
     fields["span"] = as_span(span) if span is not None else default_span(problem, kind)
+    if kw.get("origin") is not None:
+        kw["origin"] = problem.flatten(kw["origin"], what="plane origin")
     if "starts" in kw:
         starts = kw.pop("starts")
         fields["start_points"] = [problem.flatten(p, what="start") for p in starts]

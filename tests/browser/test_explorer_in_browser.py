@@ -41,6 +41,16 @@ def _runs_in_status(page) -> int:
     return int(match.group(1))
 
 
+def _snapshot_count(page) -> int:
+    """How many snapshots the explorer's record output lists now (0 if none)."""
+    text = page.evaluate(
+        "() => Array.from(document.querySelectorAll('.jp-OutputArea-output'))"
+        ".map(o => o.innerText).filter(t => t.includes('basinview')).join('\\n')"
+    )
+    counts = [int(n) for n in re.findall(r"basinview snapshots \((\d+)\)", text)]
+    return max(counts, default=0)
+
+
 def _path_shapes(page) -> list[str]:
     return page.evaluate(
         """() => {
@@ -162,10 +172,13 @@ def _scenario(page, server) -> None:
     )
     widget.screenshot(path=str(ARTIFACTS / "3-clicked-start.png"))
 
-    # Recording puts a snapshot into the notebook's output.
+    # Recording puts a snapshot into the notebook's output (the notebook may have
+    # recorded some already: the count goes up by one).
+    count = _snapshot_count(page)
     page.locator(".bv-explorer button", has_text="record").first.click()
-    page.wait_for_selector("text=basinview snapshots (1)")
-    page.locator("text=basinview snapshots (1)").first.scroll_into_view_if_needed()
+    expected = f"basinview snapshots ({count + 1})"
+    page.wait_for_selector(f"text={expected}")
+    page.locator(f"text={expected}").first.scroll_into_view_if_needed()
     page.screenshot(path=str(ARTIFACTS / "4-recorded.png"))
 
     # Save, then reopen: the recorded settings are still in the notebook.
@@ -177,5 +190,5 @@ def _scenario(page, server) -> None:
     assert recorded.learning_rate == (pytest.approx(1.5),)
     page.goto(server.url(NOTEBOOK.name))
     page.wait_for_selector(".jp-Notebook .jp-Cell")
-    page.wait_for_selector("text=basinview snapshots (1)")
+    page.wait_for_selector(f"text={expected}")
     page.screenshot(path=str(ARTIFACTS / "5-reopened.png"))
