@@ -171,6 +171,9 @@ def load_function(spec: str) -> Any:
     added = cwd not in sys.path and "" not in sys.path
     if added:
         sys.path.insert(0, cwd)
+    # The report writes only --out: importing the user's module must not leave
+    # __pycache__ behind in their folder.
+    bytecode, sys.dont_write_bytecode = sys.dont_write_bytecode, True
     try:
         module = importlib.import_module(module_name)
     except ModuleNotFoundError as exc:
@@ -188,6 +191,7 @@ def load_function(spec: str) -> Any:
             f"importing {module_name!r} raised {type(exc).__name__}: {exc}"
         ) from None
     finally:
+        sys.dont_write_bytecode = bytecode
         if added:
             sys.path.remove(cwd)
     target: Any = module

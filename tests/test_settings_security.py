@@ -451,11 +451,6 @@ def test_report_writes_only_to_out(tmp_path):
     assert folder_state(tmp_path) == before
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="__main__.py: importing the user's MODULE writes __pycache__/*.pyc into the "
-    "user's folder; set sys.dont_write_bytecode = True around the import in load_function",
-)
 def test_report_leaves_no_bytecode_next_to_the_users_module(tmp_path, monkeypatch):
     monkeypatch.setattr(sys, "dont_write_bytecode", False)  # as in a default interpreter
     work = tmp_path / "work"
