@@ -9,6 +9,8 @@ import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
 from ..core.surface import Profile, Surface
+from .build import FigureSpec
+from .levels import choose_levels
 from .overlays import add_critical_points, shift_traces
 from .slices import slice_caution
 from .style import DIVERGED, NOT_CONVERGED, add_note, base_layout, category_colour, uid
@@ -83,57 +85,58 @@ def basin_figure(
         scale += [[i / n, colour], [(i + 1) / n, colour]]
     names = [name.split(" (")[0] for _, name, _ in cats]
     hover = np.array(names, dtype=object)[z.astype(int)]
-    fig = go.Figure()
+    fig = FigureSpec()
     fig.add_trace(
-        go.Heatmap(
-            x=a,
-            y=b,
-            z=z,
-            zmin=-0.5,
-            zmax=n - 0.5,
-            colorscale=scale,
-            showscale=False,
-            opacity=0.85,
-            customdata=hover,
-            hovertemplate=(
+        {
+            "type": "heatmap",
+            "x": a,
+            "y": b,
+            "z": z,
+            "zmin": -0.5,
+            "zmax": n - 0.5,
+            "colorscale": scale,
+            "showscale": False,
+            "opacity": 0.85,
+            "customdata": hover,
+            "hovertemplate": (
                 f"start {plane.axis_titles[0]} %{{x:.4g}}, {plane.axis_titles[1]} %{{y:.4g}}"
                 "<br>ends: %{customdata}<extra></extra>"
             ),
-            name="basins",
-            uid=uid("basins", "map"),
-        )
+            "name": "basins",
+            "uid": uid("basins", "map"),
+        }
     )
     for i, (code, name, colour) in enumerate(cats):
         fig.add_trace(
-            go.Scatter(
-                x=[None],
-                y=[None],
-                mode="markers",
-                name=name,
-                marker={"symbol": "square", "size": 14, "color": colour},
-                legendrank=10 + i,
-                uid=uid("basins", "key", "m" + str(code) if code >= 0 else f"n{-code}"),
-            )
+            {
+                "type": "scatter",
+                "x": [None],
+                "y": [None],
+                "mode": "markers",
+                "name": name,
+                "marker": {"symbol": "square", "size": 14, "color": colour},
+                "legendrank": 10 + i,
+                "uid": uid("basins", "key", "m" + str(code) if code >= 0 else f"n{-code}"),
+            }
         )
     if surface is not None:
-        from .levels import choose_levels
-
         lv = choose_levels(surface.loss)
         fig.add_trace(
-            go.Contour(
-                x=surface.a,
-                y=surface.b,
-                z=lv.apply(surface.loss),
-                connectgaps=False,
-                ncontours=18,
-                contours={"coloring": "none"},
-                line={"color": "rgba(255,255,255,0.7)", "width": 1},
-                showscale=False,
-                showlegend=False,
-                hoverinfo="skip",
-                name="loss contours",
-                uid=uid("basins", "contours"),
-            )
+            {
+                "type": "contour",
+                "x": surface.a,
+                "y": surface.b,
+                "z": lv.apply(surface.loss),
+                "connectgaps": False,
+                "ncontours": 18,
+                "contours": {"coloring": "none"},
+                "line": {"color": "rgba(255,255,255,0.7)", "width": 1},
+                "showscale": False,
+                "showlegend": False,
+                "hoverinfo": "skip",
+                "name": "loss contours",
+                "uid": uid("basins", "contours"),
+            }
         )
     add_critical_points(fig, minima, plane, "basins")
     notes = []
@@ -155,20 +158,24 @@ def basin_figure(
     layout = base_layout(title or "Basins: where each start ends", sub)
     layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left"})
     layout["margin"].update({"r": 290, "b": 80 + 17 * len(notes)})
-    fig.update_layout(**layout, showlegend=True)
+    layout["showlegend"] = True
+    fig.update_layout(layout)
     half = [(a[1] - a[0]) / 2 if a.size > 1 else 0.5, (b[1] - b[0]) / 2 if b.size > 1 else 0.5]
-    fig.update_xaxes(title=plane.axis_titles[0], range=[a[0] - half[0], a[-1] + half[0]])
-    fig.update_yaxes(title=plane.axis_titles[1], range=[b[0] - half[1], b[-1] + half[1]])
+    xrange = [float(a[0] - half[0]), float(a[-1] + half[0])]
+    yrange = [float(b[0] - half[1]), float(b[-1] + half[1])]
+    xaxis = {"title": {"text": plane.axis_titles[0]}, "range": xrange}
+    yaxis = {"title": {"text": plane.axis_titles[1]}, "range": yrange}
     g = plane.gram
     if abs(g[0, 0] - g[1, 1]) <= 1e-6 * g[0, 0] and abs(g[0, 1]) <= 1e-6 * g[0, 0]:
         ratio = (a[-1] - a[0]) / max(b[-1] - b[0], 1e-300)
         if 0.25 <= ratio <= 4:
-            fig.update_yaxes(scaleanchor="x", scaleratio=1, constrain="domain")
-            fig.update_xaxes(constrain="domain")
+            yaxis.update(scaleanchor="x", scaleratio=1, constrain="domain")
+            xaxis.update(constrain="domain")
+    fig.update_layout({"xaxis": xaxis, "yaxis": yaxis})
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     shift_traces(fig, plane)
-    return fig
+    return fig.figure()
 
 
 def profile_figure(
@@ -191,7 +198,7 @@ def profile_figure(
     loss = np.asarray(profile.loss, dtype=np.float64)
     loss = np.where(np.isfinite(loss), loss, np.nan)
     inside = (t >= -1e-12) & (t <= 1 + 1e-12)
-    fig = go.Figure()
+    fig = FigureSpec()
     for part, mask, style in (
         ("outside", ~inside, {"color": "#9A9A9A", "width": 1.5}),
         ("segment", inside, {"color": "#2B2B2B", "width": 2.5}),
@@ -203,41 +210,52 @@ def profile_figure(
             if edge.size:
                 y[edge[[0, -1]]] = loss[edge[[0, -1]]]
         fig.add_trace(
-            go.Scatter(
-                x=t,
-                y=y,
-                mode="lines",
-                name="beyond the points" if part == "outside" else "between the points",
-                line=style,
-                hovertemplate="t %{x:.3f}<br>loss %{y:.6g}<extra></extra>",
-                uid=uid("profile", part),
-            )
+            {
+                "type": "scatter",
+                "x": t,
+                "y": y,
+                "mode": "lines",
+                "name": "beyond the points" if part == "outside" else "between the points",
+                "line": style,
+                "hovertemplate": "t %{x:.3f}<br>loss %{y:.6g}<extra></extra>",
+                "uid": uid("profile", part),
+            }
         )
     ends = np.array([np.argmin(np.abs(t - 0.0)), np.argmin(np.abs(t - 1.0))])
     fig.add_trace(
-        go.Scatter(
-            x=t[ends],
-            y=loss[ends],
-            mode="markers+text",
-            text=list(labels),
-            textposition="bottom center",
-            textfont={"size": 14},
-            marker={
+        {
+            "type": "scatter",
+            "x": t[ends],
+            "y": loss[ends],
+            "mode": "markers+text",
+            "text": list(labels),
+            "textposition": "bottom center",
+            "textfont": {"size": 14},
+            "marker": {
                 "symbol": "star",
                 "size": 15,
                 "color": [category_colour(0), category_colour(1)],
                 "line": {"color": "#111111", "width": 1},
             },
-            name="the two points",
-            hovertemplate="%{text}<br>loss %{y:.6g}<extra></extra>",
-            uid=uid("profile", "ends"),
-        )
+            "name": "the two points",
+            "hovertemplate": "%{text}<br>loss %{y:.6g}<extra></extra>",
+            "uid": uid("profile", "ends"),
+        }
     )
     seg = np.where(inside, loss, np.nan)
     if np.isfinite(seg).any() and np.isfinite(loss[ends]).all():
         k = int(np.nanargmax(seg))
         top, base = float(seg[k]), float(np.max(loss[ends]))
-        fig.add_hline(y=base, line={"color": "#6A6A6A", "width": 1, "dash": "dot"})
+        fig.add_shape(
+            line={"color": "#6A6A6A", "dash": "dot", "width": 1},
+            type="line",
+            x0=0,
+            x1=1,
+            xref="x domain",
+            y0=base,
+            y1=base,
+            yref="y",
+        )
         if profile.barrier > 0:
             fig.add_annotation(
                 x=t[k],
@@ -270,12 +288,13 @@ def profile_figure(
     sub = f"distance between the points {dist:.4g}; barrier {profile.barrier:.4g}"
     layout = base_layout(title or f"Profile from {labels[0]} to {labels[1]}", sub)
     layout["margin"]["b"] = 100
-    fig.update_layout(**layout, showlegend=False)
-    fig.update_xaxes(title=f"t (0 = {labels[0]}, 1 = {labels[1]})")
-    fig.update_yaxes(title="loss")
+    layout["showlegend"] = False
+    layout["xaxis"] = {"title": {"text": f"t (0 = {labels[0]}, 1 = {labels[1]})"}}
+    layout["yaxis"] = {"title": {"text": "loss"}}
+    fig.update_layout(layout)
     add_note(
         fig,
         "One straight path: a curved path between the points may rise less, so this barrier "
         "is an upper bound on the lowest barrier between them.",
     )
-    return fig
+    return fig.figure()

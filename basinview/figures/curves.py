@@ -6,10 +6,11 @@ from typing import Any
 
 import numpy as np
 import plotly.graph_objects as go
-from plotly.subplots import make_subplots
+from plotly._subplots import SubplotRef
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
+from .build import FigureSpec
 from .levels import choose_levels
 from .paths import colour_note, draw_indices, group_runs, select_runs
 from .style import DIVERGED, NOT_CONVERGED, OKABE_ITO, add_note, base_layout, uid
@@ -74,7 +75,7 @@ def loss_curves_figure(
         "linear": "loss" if low > 0 or not values.size else "loss (linear: some losses ≤ 0)",
         "excess": f"loss − lowest loss reached ({low:.5g}), log scale",
     }[yscale]
-    fig = go.Figure()
+    fig = FigureSpec()
     for rank, g in enumerate(groups):
         xs, ys, cs = [], [], []
         for r in g.runs:
@@ -88,21 +89,22 @@ def loss_curves_figure(
             cs.append(np.append(np.full(keep.size, r, dtype=np.float64), np.nan))
         thin = g.key == "diverged"
         fig.add_trace(
-            go.Scatter(
-                x=np.concatenate(xs),
-                y=np.concatenate(ys),
-                customdata=np.stack([np.concatenate(cs), np.concatenate(ys) + shift], axis=1),
-                mode="lines",
-                name=g.name,
-                legendrank=10 + rank,
-                line={"color": g.colour, "width": 1.2 if thin else 1.8, "dash": g.dash},
-                opacity=0.8 if thin else 0.9,
-                hovertemplate=(
+            {
+                "type": "scatter",
+                "x": np.concatenate(xs),
+                "y": np.concatenate(ys),
+                "customdata": np.stack([np.concatenate(cs), np.concatenate(ys) + shift], axis=1),
+                "mode": "lines",
+                "name": g.name,
+                "legendrank": 10 + rank,
+                "line": {"color": g.colour, "width": 1.2 if thin else 1.8, "dash": g.dash},
+                "opacity": 0.8 if thin else 0.9,
+                "hovertemplate": (
                     "run %{customdata[0]}<br>step %{x}<br>loss %{customdata[1]:.6g}"
                     "<extra>%{fullData.name}</extra>"
                 ),
-                uid=uid("curves", "runs", g.key),
-            )
+                "uid": uid("curves", "runs", g.key),
+            }
         )
     notes = []
     if left_out:
@@ -119,11 +121,15 @@ def loss_curves_figure(
         )
     layout = base_layout(title or "Loss against step", f"{len(runs)} runs of {runs.rule}")
     layout["margin"]["b"] = 80 + 17 * len(notes)
-    fig.update_layout(**layout, showlegend=True)
-    fig.update_xaxes(title="step", rangemode="tozero")
-    fig.update_yaxes(title=axis_title, type="log" if yscale in ("log", "excess") else "linear")
+    layout["showlegend"] = True
+    fig.update_layout(layout)
+    yaxis: dict[str, Any] = {
+        "title": {"text": axis_title},
+        "type": "log" if yscale in ("log", "excess") else "linear",
+    }
     if yscale in ("log", "excess"):
-        fig.update_yaxes(dtick=1, exponentformat="power")
+        yaxis.update(dtick=1, exponentformat="power")
+    fig.update_layout({"xaxis": {"title": {"text": "step"}, "rangemode": "tozero"}, "yaxis": yaxis})
     if yscale == "linear":
         tame = np.concatenate(
             [runs.loss_curve(r) for r in drawn if runs.status[r] != "diverged"] or [np.zeros(0)]
@@ -131,11 +137,11 @@ def loss_curves_figure(
         tame = tame[np.isfinite(tame)]
         if n_div and tame.size:
             pad = 0.05 * (tame.max() - tame.min() or 1.0)
-            fig.update_yaxes(range=[tame.min() - pad, tame.max() + pad])
+            fig.layout["yaxis"]["range"] = [float(tame.min() - pad), float(tame.max() + pad)]
             notes.append("The axis is fitted to the runs that did not diverge.")
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
-    return fig
+    return fig.figure()
 
 
 def _edges(rates: np.ndarray) -> np.ndarray:
@@ -173,9 +179,7 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     column = "median_final_loss" if y == "final_loss" else "median_steps_to_tol"
     values = table[column].to_numpy(dtype=np.float64, na_value=np.nan)
     regimes = table["regime"].astype(str).to_list()
-    fig = make_subplots(
-        rows=2, cols=1, shared_xaxes=True, row_heights=[0.68, 0.32], vertical_spacing=0.06
-    )
+    fig = _two_rows()
     edges = _edges(rates)
     finite = values[np.isfinite(values)]
     log_y = y == "final_loss" and finite.size > 1 and choose_levels(finite).mode == "log"
@@ -194,48 +198,48 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
         shown = mask & np.isfinite(values)
         lost = mask & ~np.isfinite(values)
         fig.add_trace(
-            go.Scatter(
-                x=np.concatenate([rates[shown], rates[lost]]),
-                y=np.concatenate([values[shown], np.full(lost.sum(), top)]),
-                customdata=np.concatenate(
+            {
+                "type": "scatter",
+                "x": np.concatenate([rates[shown], rates[lost]]),
+                "y": np.concatenate([values[shown], np.full(lost.sum(), top)]),
+                "customdata": np.concatenate(
                     [
                         values[shown].astype(object),
                         np.full(lost.sum(), "none (not finite)", dtype=object),
                     ]
                 ),
-                mode="markers",
-                name=regime,
-                legendgroup="regime",
-                legendgrouptitle_text="regime",
-                legendrank=10 + list(REGIME_COLOURS).index(regime),
-                marker={
+                "mode": "markers",
+                "name": regime,
+                "legendgroup": "regime",
+                "legendgrouptitle": {"text": "regime"},
+                "legendrank": 10 + list(REGIME_COLOURS).index(regime),
+                "marker": {
                     "size": 11,
                     "color": colour,
                     "symbol": ["circle"] * int(shown.sum()) + ["x-thin-open"] * int(lost.sum()),
                     "line": {"color": colour if lost.any() else "white", "width": 1.5},
                 },
-                hovertemplate=(
+                "hovertemplate": (
                     "learning rate %{x:.4g}<br>" + column.replace("_", " ") + " %{customdata}"
                     f"<extra>{regime}</extra>"
                 ),
-                uid=uid("sweep", "regime", regime),
-            ),
-            row=1,
-            col=1,
+                "uid": uid("sweep", "regime", regime),
+                **_ROW[1],
+            }
         )
     fig.add_trace(
-        go.Scatter(
-            x=rates,
-            y=values,
-            mode="lines",
-            line={"color": "#9A9A9A", "width": 1},
-            connectgaps=False,
-            hoverinfo="skip",
-            showlegend=False,
-            uid=uid("sweep", "trend"),
-        ),
-        row=1,
-        col=1,
+        {
+            "type": "scatter",
+            "x": rates,
+            "y": values,
+            "mode": "lines",
+            "line": {"color": "#9A9A9A", "width": 1},
+            "connectgaps": False,
+            "hoverinfo": "skip",
+            "showlegend": False,
+            "uid": uid("sweep", "trend"),
+            **_ROW[1],
+        }
     )
     runs_col = table["runs"].to_numpy(dtype=np.float64)
     shares = [
@@ -246,35 +250,38 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     for rank, (name, counts, colour) in enumerate(shares):
         share = counts.to_numpy(dtype=np.float64) / np.maximum(runs_col, 1)
         fig.add_trace(
-            go.Scatter(
-                x=rates,
-                y=share,
-                mode="lines+markers",
-                stackgroup="status",
-                name=name,
-                legendgroup="status",
-                legendgrouptitle_text="share of runs",
-                legendrank=20 + rank,
-                line={"color": colour, "width": 1},
-                fillcolor=_tint(colour, 0.45),
-                marker={"size": 5},
-                hovertemplate="learning rate %{x:.4g}<br>%{y:.0%} " + name + "<extra></extra>",
-                uid=uid("sweep", "share", name.replace(" ", "-")),
-            ),
-            row=2,
-            col=1,
+            {
+                "type": "scatter",
+                "x": rates,
+                "y": share,
+                "mode": "lines+markers",
+                "stackgroup": "status",
+                "name": name,
+                "legendgroup": "status",
+                "legendgrouptitle": {"text": "share of runs"},
+                "legendrank": 20 + rank,
+                "line": {"color": colour, "width": 1},
+                "fillcolor": _tint(colour, 0.45),
+                "marker": {"size": 5},
+                "hovertemplate": "learning rate %{x:.4g}<br>%{y:.0%} " + name + "<extra></extra>",
+                "uid": uid("sweep", "share", name.replace(" ", "-")),
+                **_ROW[2],
+            }
         )
-    # Shapes go in after the traces: plotly skips shapes on subplots that are still empty.
+    # Regime bands span the top panel's height ("y domain") at data values of x.
     for i, regime in enumerate(regimes):
-        fig.add_vrect(
+        fig.add_shape(
+            fillcolor=REGIME_COLOURS.get(regime, "#DDDDDD"),
+            layer="below",
+            line={"width": 0},
+            opacity=0.16,
+            type="rect",
             x0=edges[i],
             x1=edges[i + 1],
-            fillcolor=REGIME_COLOURS.get(regime, "#DDDDDD"),
-            opacity=0.16,
-            line_width=0,
-            layer="below",
-            row=1,
-            col=1,
+            xref="x",
+            y0=0,
+            y1=1,
+            yref="y domain",
         )
     _bounds(fig, sweep)
     subtitle = (
@@ -282,19 +289,26 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     )
     layout = base_layout(title or "Step size: what each learning rate did", subtitle)
     layout["margin"]["b"] = 100
-    fig.update_layout(**layout, showlegend=True)
-    fig.update_xaxes(
-        type="log",
-        exponentformat="power",
-        dtick=1,
-        range=[np.log10(edges[0]), np.log10(edges[-1])],
-    )
-    fig.update_xaxes(title="learning rate (log scale)", row=2, col=1)
+    layout["showlegend"] = True
+    fig.update_layout(layout)
+    log_x = {
+        "type": "log",
+        "exponentformat": "power",
+        "dtick": 1,
+        "range": [float(np.log10(edges[0])), float(np.log10(edges[-1]))],
+    }
     ylabel = "median final loss" if y == "final_loss" else "median steps to tolerance"
-    fig.update_yaxes(title=ylabel + (" (log scale)" if log_y else ""), row=1, col=1)
+    top_y: dict[str, Any] = {"title": {"text": ylabel + (" (log scale)" if log_y else "")}}
     if log_y:
-        fig.update_yaxes(type="log", exponentformat="power", row=1, col=1)
-    fig.update_yaxes(title="share", range=[0, 1], tickformat=".0%", row=2, col=1)
+        top_y.update(type="log", exponentformat="power")
+    fig.update_layout(
+        {
+            "xaxis": log_x,
+            "xaxis2": {**log_x, "title": {"text": "learning rate (log scale)"}},
+            "yaxis": top_y,
+            "yaxis2": {"title": {"text": "share"}, "range": [0, 1], "tickformat": ".0%"},
+        }
+    )
     missing = int(np.sum(~np.isfinite(values)))
     note = (
         "The predicted bound comes from the curvature at one point; elsewhere the loss may be "
@@ -303,6 +317,39 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     if missing:
         note += f" × at the top: no finite {ylabel} at that rate."
     add_note(fig, note)
+    return fig.figure()
+
+
+#: Axes of the two panels of the step-size figure (top: x, y; bottom: x2, y2).
+_ROW = {1: {"xaxis": "x", "yaxis": "y"}, 2: {"xaxis": "x2", "yaxis": "y2"}}
+
+
+def _two_rows() -> FigureSpec:
+    """Two panels sharing the x axis, heights 0.68 : 0.32 with a 0.06 gap.
+
+    The same layout (and subplot grid, so ``fig.add_trace(..., row=2, col=1)``
+    works on the result) as ``plotly.subplots.make_subplots(rows=2, cols=1,
+    shared_xaxes=True, row_heights=[0.68, 0.32], vertical_spacing=0.06)``.
+    """
+    fig = FigureSpec(
+        {
+            "xaxis": {
+                "anchor": "y",
+                "domain": [0.0, 1.0],
+                "matches": "x2",
+                "showticklabels": False,
+            },
+            "yaxis": {"anchor": "x", "domain": [0.3608, 1.0]},
+            "xaxis2": {"anchor": "y2", "domain": [0.0, 1.0]},
+            "yaxis2": {"anchor": "x2", "domain": [0.0, 0.3008]},
+        }
+    )
+    grid = [
+        [(SubplotRef("xy", ("xaxis", "yaxis"), {"xaxis": "x", "yaxis": "y"}),)],
+        [(SubplotRef("xy", ("xaxis2", "yaxis2"), {"xaxis": "x2", "yaxis": "y2"}),)],
+    ]
+    text = "This is the format of your plot grid:\n[ (1,1) x,y   ]\n[ (2,1) x2,y2 ]\n"
+    fig.grid = (text, grid)
     return fig
 
 
@@ -316,7 +363,7 @@ def _has(obj: Any, name: str) -> bool:
     return value is not None and np.isfinite(value)
 
 
-def _bounds(fig: go.Figure, sweep: Any) -> None:
+def _bounds(fig: FigureSpec, sweep: Any) -> None:
     for name, dash, label, anchor in (
         ("predicted_bound", "dash", "predicted bound", "left"),
         ("observed_bound", "dot", "observed bound", "right"),
@@ -324,9 +371,16 @@ def _bounds(fig: go.Figure, sweep: Any) -> None:
         if not _has(sweep, name):
             continue
         x = float(getattr(sweep, name))
-        for row in (1, 2):
-            fig.add_vline(
-                x=x, line={"color": "#111111", "width": 1.6, "dash": dash}, row=row, col=1
+        for xref, yref in (("x", "y domain"), ("x2", "y2 domain")):
+            fig.add_shape(
+                line={"color": "#111111", "dash": dash, "width": 1.6},
+                type="line",
+                x0=x,
+                x1=x,
+                xref=xref,
+                y0=0,
+                y1=1,
+                yref=yref,
             )
         # Annotations on a log axis take log10 positions (shapes take data values).
         fig.add_annotation(

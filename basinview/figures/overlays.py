@@ -10,11 +10,11 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-import plotly.graph_objects as go
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
 from ..core.planes import Plane
+from .build import FigureSpec
 from .paths import PathGroup, stack_paths
 from .style import uid
 
@@ -67,20 +67,24 @@ def coordinate_shift(plane: Plane) -> tuple[float, float]:
     return float(plane.origin[i]), float(plane.origin[j])
 
 
-def shift_traces(fig: go.Figure, plane: Plane) -> None:
+def shift_traces(fig: FigureSpec, plane: Plane) -> None:
     """Move every trace and axis range of ``fig`` by :func:`coordinate_shift`."""
     sa, sb = coordinate_shift(plane)
     if sa == 0 and sb == 0:
         return
     for trace in fig.data:
-        if trace.x is not None:
-            trace.x = np.asarray(trace.x, dtype=np.float64) + sa
-        if trace.y is not None:
-            trace.y = np.asarray(trace.y, dtype=np.float64) + sb
-    if fig.layout.xaxis.range is not None:
-        fig.layout.xaxis.range = [v + sa for v in fig.layout.xaxis.range]
-    if fig.layout.yaxis.range is not None:
-        fig.layout.yaxis.range = [v + sb for v in fig.layout.yaxis.range]
+        for key, shift in (("x", sa), ("y", sb)):
+            values = trace.get(key)
+            if values is not None:
+                moved = np.asarray(values, dtype=np.float64) + shift
+                # an axis that does not move keeps its values (and dtype), as plotly
+                # keeps a property set to an equal value
+                if not np.array_equal(values, moved):
+                    trace[key] = moved
+    for axis, shift in (("xaxis", sa), ("yaxis", sb)):
+        bounds = fig.layout.get(axis, {}).get("range")
+        if bounds is not None:
+            fig.layout[axis]["range"] = [v + shift for v in bounds]
 
 
 def _end_points(runs: Runs, group: PathGroup, bounds: tuple[float, float, float, float]):
@@ -102,7 +106,7 @@ def _end_points(runs: Runs, group: PathGroup, bounds: tuple[float, float, float,
 
 
 def add_paths(
-    fig: go.Figure,
+    fig: FigureSpec,
     runs: Runs,
     groups: list[PathGroup],
     bounds: tuple[float, float, float, float],
@@ -117,104 +121,109 @@ def add_paths(
     cased = [s for g, s in zip(groups, stacks) if g.key != "diverged"]
     if cased:
         fig.add_trace(
-            go.Scatter(
-                x=np.concatenate([s["x"] for s in cased]),
-                y=np.concatenate([s["y"] for s in cased]),
-                mode="lines",
-                line={"color": "rgba(255,255,255,0.85)", "width": 4.5},
-                hoverinfo="skip",
-                showlegend=False,
-                uid=uid("slice", "casing"),
-            )
+            {
+                "type": "scatter",
+                "x": np.concatenate([s["x"] for s in cased]),
+                "y": np.concatenate([s["y"] for s in cased]),
+                "mode": "lines",
+                "line": {"color": "rgba(255,255,255,0.85)", "width": 4.5},
+                "hoverinfo": "skip",
+                "showlegend": False,
+                "uid": uid("slice", "casing"),
+            }
         )
     for g, s in zip(groups, stacks):
         thin = g.key == "diverged"
         fig.add_trace(
-            go.Scatter(
-                x=s["x"],
-                y=s["y"],
-                customdata=s["custom"],
-                mode="lines",
-                name=g.name,
-                legendgroup=g.key,
-                legendrank=rank[g.key],
-                opacity=0.75 if thin else 1.0,
-                line={"color": g.colour, "width": 1.2 if thin else 2, "dash": g.dash},
-                hovertemplate=PATH_HOVER,
-                uid=uid("slice", "path", g.key),
-            )
+            {
+                "type": "scatter",
+                "x": s["x"],
+                "y": s["y"],
+                "customdata": s["custom"],
+                "mode": "lines",
+                "name": g.name,
+                "legendgroup": g.key,
+                "legendrank": rank[g.key],
+                "opacity": 0.75 if thin else 1.0,
+                "line": {"color": g.colour, "width": 1.2 if thin else 2, "dash": g.dash},
+                "hovertemplate": PATH_HOVER,
+                "uid": uid("slice", "path", g.key),
+            }
         )
     for g in groups:
         ex, ey, ec = _end_points(runs, g, bounds)
         fig.add_trace(
-            go.Scatter(
-                x=ex,
-                y=ey,
-                customdata=ec,
-                mode="markers",
-                name=f"{g.name} (end)",
-                legendgroup=g.key,
-                showlegend=False,
-                marker={
+            {
+                "type": "scatter",
+                "x": ex,
+                "y": ey,
+                "customdata": ec,
+                "mode": "markers",
+                "name": f"{g.name} (end)",
+                "legendgroup": g.key,
+                "showlegend": False,
+                "marker": {
                     "symbol": g.end_symbol,
                     "size": 11 if g.key == "diverged" else 9,
                     "color": g.colour,
                     "line": {"color": g.colour if g.key == "diverged" else "white", "width": 1.5},
                 },
-                hovertemplate="end of run: " + PATH_HOVER,
-                uid=uid("slice", "end", g.key),
-            )
+                "hovertemplate": "end of run: " + PATH_HOVER,
+                "uid": uid("slice", "end", g.key),
+            }
         )
     drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
     fig.add_trace(
-        go.Scatter(
-            x=runs.path[drawn, 0, 0],
-            y=runs.path[drawn, 0, 1],
-            customdata=np.stack(
+        {
+            "type": "scatter",
+            "x": runs.path[drawn, 0, 0],
+            "y": runs.path[drawn, 0, 1],
+            "customdata": np.stack(
                 [drawn, np.zeros_like(drawn), runs.losses[drawn, 0], runs.off_plane[drawn, 0]],
                 axis=1,
             ),
-            mode="markers",
-            name="start",
-            legendrank=1000,
-            marker={
+            "mode": "markers",
+            "name": "start",
+            "legendrank": 1000,
+            "marker": {
                 "symbol": "circle",
                 "size": 8,
                 "color": "white",
                 "line": {"color": "#2B2B2B", "width": 1.5},
             },
-            hovertemplate="start: " + PATH_HOVER,
-            uid=uid("slice", "start"),
-        )
+            "hovertemplate": "start: " + PATH_HOVER,
+            "uid": uid("slice", "start"),
+        }
     )
 
 
-def add_critical_points(fig: go.Figure, minima: Any, plane: Plane, figure: str) -> None:
+def add_critical_points(fig: FigureSpec, minima: Any, plane: Plane, figure: str) -> None:
     a, b, off = plane.project(np.asarray(minima.points, dtype=np.float64))
     labels = list(minima.labels)
     custom = np.stack([np.asarray(minima.loss, np.float64), off], axis=1)
     kinds = [str(k) for k in minima.kind]
     fig.add_trace(
-        go.Scatter(
-            x=a,
-            y=b,
-            text=labels,
-            customdata=custom,
-            hovertext=[f"{lab}: {kind}" for lab, kind in zip(labels, kinds)],
-            mode="markers+text",
-            textposition="top right",
-            textfont={"size": 14, "color": "#111111"},
-            name="critical points found",
-            marker={
+        {
+            "type": "scatter",
+            "x": a,
+            "y": b,
+            "text": labels,
+            "customdata": custom,
+            "hovertext": [f"{lab}: {kind}" for lab, kind in zip(labels, kinds)],
+            "mode": "markers+text",
+            "textposition": "top right",
+            "textfont": {"size": 14, "color": "#111111"},
+            "name": "critical points found",
+            "marker": {
                 "symbol": ["star" if k == "minimum" else "diamond-tall" for k in kinds],
                 "size": 15,
                 "color": "white",
                 "line": {"color": "#111111", "width": 1.5},
             },
-            hovertemplate=(
+            "hovertemplate": (
                 "%{hovertext}<br>loss %{customdata[0]:.5g}<br>off-plane distance "
                 "%{customdata[1]:.3g}<extra></extra>"
             ),
-            uid=uid(figure, "critical-points"),
-        )
+            "uid": uid(figure, "critical-points"),
+        }
     )

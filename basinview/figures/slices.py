@@ -16,6 +16,7 @@ import plotly.graph_objects as go
 from ..core.descent import Runs
 from ..core.planes import Plane
 from ..core.surface import Surface
+from .build import FigureSpec
 from .levels import Levels, choose_levels
 from .overlays import (
     PATH_HOVER,
@@ -26,7 +27,7 @@ from .overlays import (
     shift_traces,
 )
 from .paths import colour_note, group_runs, select_runs, stack_paths
-from .style import SURFACE_SCALE, add_note, base_layout, uid
+from .style import SURFACE_SCALE, add_note, base_layout, colour_scale, uid
 
 __all__ = ["coordinate_shift", "relief_figure", "slice_caution", "slice_figure"]
 
@@ -111,26 +112,27 @@ def slice_figure(
     plane = surface.plane
     lv = choose_levels(surface.loss, levels)
     z = lv.apply(surface.loss)
-    fig = go.Figure()
+    fig = FigureSpec()
     fig.add_trace(
-        go.Contour(
-            x=surface.a,
-            y=surface.b,
-            z=z,
-            customdata=np.where(np.isfinite(surface.loss), surface.loss, np.nan),
-            colorscale=SURFACE_SCALE,
-            connectgaps=False,
-            ncontours=24,
-            contours={"coloring": "heatmap", "showlines": True},
-            line={"width": 0.6, "color": "rgba(255,255,255,0.45)"},
-            colorbar=_colourbar(lv, z),
-            hovertemplate=(
+        {
+            "type": "contour",
+            "x": surface.a,
+            "y": surface.b,
+            "z": z,
+            "customdata": np.where(np.isfinite(surface.loss), surface.loss, np.nan),
+            "colorscale": colour_scale(SURFACE_SCALE),
+            "connectgaps": False,
+            "ncontours": 24,
+            "contours": {"coloring": "heatmap", "showlines": True},
+            "line": {"width": 0.6, "color": "rgba(255,255,255,0.45)"},
+            "colorbar": _colourbar(lv, z),
+            "hovertemplate": (
                 f"{plane.axis_titles[0]} %{{x:.4g}}<br>{plane.axis_titles[1]} %{{y:.4g}}"
                 "<br>loss %{customdata:.5g}<extra></extra>"
             ),
-            name="loss",
-            uid=uid("slice", "surface"),
-        )
+            "name": "loss",
+            "uid": uid("slice", "surface"),
+        }
     )
     bounds = (float(surface.a[0]), float(surface.a[-1]), float(surface.b[0]), float(surface.b[-1]))
     notes = []
@@ -158,16 +160,18 @@ def slice_figure(
     layout["legend"].update({"orientation": "v", "x": 1.16, "y": 1, "xanchor": "left"})
     layout["margin"]["b"] = 80 + 17 * len(notes)
     layout["margin"]["r"] = 250 if runs is not None or minima is not None else 40
-    fig.update_layout(**layout)
-    fig.update_xaxes(title=plane.axis_titles[0], range=bounds[:2], showgrid=False, zeroline=False)
-    fig.update_yaxes(title=plane.axis_titles[1], range=bounds[2:], showgrid=False, zeroline=False)
+    fig.update_layout(layout)
+    axes = {"showgrid": False, "zeroline": False}
+    xaxis = {"title": {"text": plane.axis_titles[0]}, "range": list(bounds[:2]), **axes}
+    yaxis = {"title": {"text": plane.axis_titles[1]}, "range": list(bounds[2:]), **axes}
     if _isotropic(plane, surface):
-        fig.update_yaxes(scaleanchor="x", scaleratio=1, constrain="domain")
-        fig.update_xaxes(constrain="domain")
+        yaxis.update(scaleanchor="x", scaleratio=1, constrain="domain")
+        xaxis.update(constrain="domain")
+    fig.update_layout({"xaxis": xaxis, "yaxis": yaxis})
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     shift_traces(fig, plane)
-    return fig
+    return fig.figure()
 
 
 def _subtitle(surface: Surface, runs: Runs | None) -> str:
@@ -204,26 +208,27 @@ def relief_figure(
     colour = lv.apply(surface.loss)
     log_z = lv.mode == "log"
     height = np.where(np.isfinite(surface.loss), surface.loss, np.nan).astype(np.float64)
-    fig = go.Figure()
+    fig = FigureSpec()
     fig.add_trace(
-        go.Surface(
-            x=surface.a,
-            y=surface.b,
-            z=height,
-            surfacecolor=colour,
-            colorscale=SURFACE_SCALE,
-            colorbar=_colourbar(lv, colour),
-            opacity=0.92,
-            contours={
+        {
+            "type": "surface",
+            "x": surface.a,
+            "y": surface.b,
+            "z": height,
+            "surfacecolor": colour,
+            "colorscale": colour_scale(SURFACE_SCALE),
+            "colorbar": _colourbar(lv, colour),
+            "opacity": 0.92,
+            "contours": {
                 "z": {"show": True, "usecolormap": True, "project": {"z": False}, "width": 1}
             },
-            hovertemplate=(
+            "hovertemplate": (
                 f"{plane.axis_titles[0]} %{{x:.4g}}<br>{plane.axis_titles[1]} %{{y:.4g}}"
                 "<br>loss %{z:.5g}<extra></extra>"
             ),
-            name="loss",
-            uid=uid("relief", "surface"),
-        )
+            "name": "loss",
+            "uid": uid("relief", "surface"),
+        }
     )
     finite = height[np.isfinite(height)]
     zlo, zhi = (float(finite.min()), float(finite.max())) if finite.size else (0.0, 1.0)
@@ -238,17 +243,18 @@ def relief_figure(
             s = stack_paths(runs, g.runs, max_points=max_points, with_z=True)
             x, y, zz = _clip_box(s["x"], s["y"], s["z"], box, log_z)
             fig.add_trace(
-                go.Scatter3d(
-                    x=x,
-                    y=y,
-                    z=zz,
-                    customdata=s["custom"],
-                    mode="lines",
-                    name=g.name,
-                    line={"color": g.colour, "width": 5, "dash": g.dash},
-                    hovertemplate=PATH_HOVER,
-                    uid=uid("relief", "path", g.key),
-                )
+                {
+                    "type": "scatter3d",
+                    "x": x,
+                    "y": y,
+                    "z": zz,
+                    "customdata": s["custom"],
+                    "mode": "lines",
+                    "name": g.name,
+                    "line": {"color": g.colour, "width": 5, "dash": g.dash},
+                    "hovertemplate": PATH_HOVER,
+                    "uid": uid("relief", "path", g.key),
+                }
             )
         if left_out:
             n = sum(g.runs.size for g in groups)
@@ -262,21 +268,24 @@ def relief_figure(
     layout = base_layout(title or "Loss relief over the slice")
     layout["margin"].update({"l": 10, "r": 10, "b": 70 + 17 * len(notes)})
     layout["legend"].update({"x": 0.01, "y": 0.98, "xanchor": "left", "yanchor": "top"})
-    fig.update_layout(**layout, showlegend=runs is not None)
-    fig.update_scenes(
-        xaxis_title=plane.axis_titles[0],
-        yaxis_title=plane.axis_titles[1],
-        zaxis_title="loss",
-        zaxis_type="log" if log_z else "linear",
-        zaxis_dtick=1 if log_z else None,
-        aspectmode="manual",
-        aspectratio={"x": 1, "y": 1, "z": 0.6},
-        camera={"eye": {"x": 1.5, "y": -1.5, "z": 1.0}},
-    )
+    layout["showlegend"] = runs is not None
+    fig.update_layout(layout)
+    zaxis = {"title": {"text": "loss"}, "type": "log" if log_z else "linear"}
+    if log_z:
+        zaxis["dtick"] = 1
+    scene = {
+        "xaxis": {"title": {"text": plane.axis_titles[0]}},
+        "yaxis": {"title": {"text": plane.axis_titles[1]}},
+        "zaxis": zaxis,
+        "aspectmode": "manual",
+        "aspectratio": {"x": 1, "y": 1, "z": 0.6},
+        "camera": {"eye": {"x": 1.5, "y": -1.5, "z": 1.0}},
+    }
+    fig.update_layout({"scene": scene})
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     shift_traces(fig, plane)
-    return fig
+    return fig.figure()
 
 
 def _clip_box(x, y, z, box, log_z: bool):

@@ -24,7 +24,9 @@ from __future__ import annotations
 import re
 from typing import Any
 
-import plotly.graph_objects as go
+import plotly.colors
+
+from .build import FigureSpec
 
 __all__ = [
     "CATEGORY_COLOURS",
@@ -35,6 +37,7 @@ __all__ = [
     "add_note",
     "base_layout",
     "category_colour",
+    "colour_scale",
     "uid",
 ]
 
@@ -87,6 +90,36 @@ def category_colour(i: int) -> str:
     return CATEGORY_COLOURS[i % len(CATEGORY_COLOURS)]
 
 
+def colour_scale(name: str) -> list[list[Any]]:
+    """A named plotly colourscale as ``[[position, colour], ...]``, evenly spaced.
+
+    This is the form plotly's validation turns a name into, so figures built
+    without validation carry the same colours.
+
+    Examples:
+        >>> colour_scale("cividis")[0], len(colour_scale("cividis"))
+        ([0.0, '#00224e'], 10)
+    """
+    colours = _named_colours(name.lower())
+    if colours is None and name.lower().endswith("_r"):
+        colours = _named_colours(name.lower()[:-2])
+        colours = colours[::-1] if colours is not None else None
+    if colours is None:
+        raise ValueError(f"{name!r} is not one of plotly's named colourscales.")
+    last = len(colours) - 1
+    return [[i / last, c] for i, c in enumerate(colours)]
+
+
+def _named_colours(name: str) -> list[str] | None:
+    # the palettes plotly's validation knows by name (plotly.colors.get_colorscale
+    # finds the same ones but inspects every module member, about a millisecond)
+    for module in (plotly.colors.sequential, plotly.colors.diverging, plotly.colors.cyclical):
+        for attr, colours in vars(module).items():
+            if attr.lower() == name and isinstance(colours, list) and not attr.startswith("_"):
+                return list(colours)
+    return None
+
+
 def uid(figure: str, role: str, index: int | str | None = None) -> str:
     """A fixed trace id: ``"<figure>-<role>"`` or ``"<figure>-<role>-<index>"``.
 
@@ -117,7 +150,13 @@ def quiet_template() -> dict[str, Any]:
         "automargin": True,
         "title": {"standoff": 12},
     }
-    scene_axis = {"backgroundcolor": "white", "gridcolor": "#E3E3E3", "linecolor": "#BDBDBD", "showbackground": True, "zerolinecolor": "#D6D6D6"}
+    scene_axis = {
+        "backgroundcolor": "white",
+        "gridcolor": "#E3E3E3",
+        "linecolor": "#BDBDBD",
+        "showbackground": True,
+        "zerolinecolor": "#D6D6D6",
+    }
     return {
         "layout": {
             "colorway": list(CATEGORY_COLOURS),
@@ -127,7 +166,11 @@ def quiet_template() -> dict[str, Any]:
             "plot_bgcolor": "white",
             "xaxis": dict(axis),
             "yaxis": dict(axis),
-            "scene": {"xaxis": dict(scene_axis), "yaxis": dict(scene_axis), "zaxis": dict(scene_axis)},
+            "scene": {
+                "xaxis": dict(scene_axis),
+                "yaxis": dict(scene_axis),
+                "zaxis": dict(scene_axis),
+            },
         }
     }
 
@@ -156,7 +199,7 @@ def base_layout(title: str | None, subtitle: str | None = None, **extra: Any) ->
     return layout
 
 
-def add_note(fig: go.Figure, text: str, *, row: int = 0) -> None:
+def add_note(fig: FigureSpec, text: str, *, row: int = 0) -> None:
     """Write a short caution or remark under the plot area (row 0 is the first line)."""
     fig.add_annotation(
         text=text,

@@ -1,0 +1,144 @@
+"""Assemble a figure as plain dicts and create the plotly object once.
+
+Building a figure through plotly's object API (``add_trace``,
+``update_layout``, ``add_annotation`` ...) validates every property on
+every call, and layout changes after traces exist go through plotly's
+relayout checks: tens of milliseconds per figure, which the Explorer pays
+on every slider move. The figure functions therefore write traces and
+layout as dicts into a :class:`FigureSpec` and call :meth:`FigureSpec.figure`
+once at the end, which creates the ``go.Figure`` without validation.
+
+Skipping validation hides no mistake: ``tests/test_figures_valid.py``
+rebuilds every figure from its dict with full validation. Set the
+environment variable ``BASINVIEW_VALIDATE_FIGURES=1`` (or pass
+``validate=True``) to validate at build time while developing. The returned
+figure validates later edits (``fig.update_layout(...)``) as usual.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+from typing import Any
+
+import plotly.graph_objects as go
+import plotly.io as pio
+from plotly.basedatatypes import BasePlotlyType
+
+__all__ = ["VALIDATE_ENV", "FigureSpec", "deep_merge"]
+
+#: Environment switch: a true value ("1", "true", "yes") validates at build time.
+VALIDATE_ENV = "BASINVIEW_VALIDATE_FIGURES"
+
+
+def deep_merge(target: dict[str, Any], update: Mapping[str, Any]) -> dict[str, Any]:
+    """Merge ``update`` into ``target`` in place: dicts recursively, anything else replaced.
+
+    This is what plotly's ``update_layout`` does with nested properties.
+
+    Examples:
+        >>> deep_merge({"a": {"b": 1, "c": 2}}, {"a": {"c": 3}, "d": 4})
+        {'a': {'b': 1, 'c': 3}, 'd': 4}
+    """
+    for key, value in update.items():
+        old = target.get(key)
+        if isinstance(value, Mapping) and isinstance(old, dict):
+            deep_merge(old, value)
+        elif isinstance(value, Mapping):
+            target[key] = deep_merge({}, value)
+        else:
+            target[key] = value
+    return target
+
+
+def _validate_from_env() -> bool:
+    return os.environ.get(VALIDATE_ENV, "").strip().lower() in ("1", "true", "yes", "on")
+
+
+def _template(ours: Any) -> Any:
+    """Our template on top of plotly's default template, as ``update_layout`` merges them.
+
+    A new ``go.Figure()`` starts from ``plotly.io.templates.default``;
+    updating its layout with a template dict merges that dict into it.
+    """
+    if not isinstance(ours, Mapping):
+        return ours
+    default = pio.templates.default
+    if default is None:
+        return deep_merge({}, ours)
+    base = default if isinstance(default, BasePlotlyType) else pio.templates[default]
+    return deep_merge(base.to_plotly_json(), ours)
+
+
+class FigureSpec:
+    """A figure under construction: a list of trace dicts and one layout dict.
+
+    Traces are dicts with a ``"type"`` key (``"scatter"``, ``"contour"``...)
+    and plotly's property names; the layout is one nested dict (axes,
+    annotations, shapes included).
+
+    Examples:
+        >>> spec = FigureSpec()
+        >>> _ = spec.add_trace({"type": "scatter", "x": [0, 1], "y": [1, 0]})
+        >>> spec.update_layout({"xaxis": {"title": {"text": "t"}}})
+        >>> spec.add_annotation(text="note", x=0, y=0, showarrow=False)
+        >>> fig = spec.figure()
+        >>> fig.data[0].type, fig.layout.xaxis.title.text, fig.layout.annotations[0].text
+        ('scatter', 't', 'note')
+    """
+
+    def __init__(self, layout: Mapping[str, Any] | None = None) -> None:
+        self.data: list[dict[str, Any]] = []
+        self.layout: dict[str, Any] = {}
+        self.grid: tuple[str, Any] | None = None
+        if layout:
+            self.update_layout(layout)
+
+    def add_trace(self, trace: dict[str, Any]) -> dict[str, Any]:
+        """Append a trace dict (must name its ``"type"``); returns it for later edits."""
+        if "type" not in trace:
+            raise KeyError("a trace dict needs a 'type' (e.g. 'scatter')")
+        self.data.append(trace)
+        return trace
+
+    def update_layout(self, update: Mapping[str, Any]) -> None:
+        """Deep-merge ``update`` into the layout (nested dicts merge, values replace)."""
+        deep_merge(self.layout, update)
+
+    def add_annotation(self, **props: Any) -> None:
+        """Append one annotation (plotly's annotation properties)."""
+        self.layout.setdefault("annotations", []).append(props)
+
+    def add_shape(self, **props: Any) -> None:
+        """Append one shape (plotly's shape properties)."""
+        self.layout.setdefault("shapes", []).append(props)
+
+    def figure(self, validate: bool | None = None) -> go.Figure:
+        """Create the plotly figure once.
+
+        Args:
+            validate: validate every property while creating the figure
+                (slow: tens of milliseconds). Default: only when the
+                environment variable ``BASINVIEW_VALIDATE_FIGURES`` is set.
+
+        Returns:
+            A ``go.Figure``; edits made to it afterwards are validated.
+        """
+        if validate is None:
+            validate = _validate_from_env()
+        layout = dict(self.layout)
+        if "template" in layout:
+            layout["template"] = _template(layout["template"])
+        spec: dict[str, Any] = {"data": self.data, "layout": layout}
+        if self.grid is not None:
+            spec["_grid_str"], spec["_grid_ref"] = self.grid
+        if validate:
+            return go.Figure(spec)
+        fig = go.Figure(spec, _validate=False)
+        # Objects created without validation keep skipping it; switch it back on
+        # so a caller's later edits are checked as on any plotly figure.
+        fig._validate = True
+        fig._layout_obj._validate = True
+        for trace in fig.data:
+            trace._validate = True
+        return fig
