@@ -19,6 +19,9 @@ __all__ = ["json_safe", "source_uids", "sync_figure"]
 
 _UIDS = "_basinview_source_uids"
 
+#: Layout properties that belong to the widget rather than to the figure shown in it.
+_WIDGET_SIZE = ("height", "width")
+
 
 def _same(a: Any, b: Any) -> bool:
     if isinstance(a, np.ndarray) or isinstance(b, np.ndarray):
@@ -73,22 +76,51 @@ def sync_figure(target: go.FigureWidget, source: go.Figure) -> bool:
             target.add_traces([json_safe(t.to_plotly_json()) for t in source.data])
         else:
             for old, new in zip(target.data, source.data):
-                old_json = old.to_plotly_json()
-                new_json = json_safe(new.to_plotly_json())
-                new_json.pop("uid", None)
+                old_json = _stored(old)
+                new_json = _stored(new)
+                safe = {k: json_safe(v) for k, v in new_json.items() if k != "uid"}
                 changed = {
-                    k: v
-                    for k, v in new_json.items()
-                    if k not in old_json or not _same(old_json[k], v)
+                    k: v for k, v in safe.items() if k not in old_json or not _same(old_json[k], v)
                 }
                 removed = [k for k in old_json if k not in new_json and k not in ("type", "uid")]
                 for key in removed:
                     old[key] = None
                 if changed:
                     old.update(changed, overwrite=True)
-        target.layout = source.layout
+        removed_layout = _sync_layout(target, source)
+    if removed_layout:
+        # None through relayout removes a property on both sides (assigning None to a
+        # nested property would leave an empty one behind, e.g. an empty axis)
+        target.plotly_relayout(dict.fromkeys(removed_layout))
     setattr(target, _UIDS, new_uids)
     return replaced
+
+
+def _sync_layout(target: go.FigureWidget, source: go.Figure) -> list[str]:
+    """Set the top-level layout properties that changed; return those ``source`` lacks.
+
+    Assigning the whole layout would validate and send all of it (the
+    template alone is kilobytes) on every update. The widget's size
+    (``height``, ``width``) stays as the widget has it unless ``source``
+    sets it.
+    """
+    old = _stored(target.layout)
+    new = _stored(source.layout)
+    changed = {k: v for k, v in new.items() if k not in old or not _same(old[k], v)}
+    removed = [k for k in old if k not in new and k not in _WIDGET_SIZE]
+    for key, value in changed.items():
+        target.layout[key] = json_safe(value)
+    return removed
+
+
+def _stored(obj: Any) -> dict[str, Any]:
+    """The properties of a plotly object as stored, for reading only.
+
+    ``to_plotly_json()`` returns a deep copy (the template alone is thousands
+    of objects); comparisons only read, so they use plotly's stored dict.
+    """
+    props = getattr(obj, "_props", None)
+    return props if isinstance(props, dict) else obj.to_plotly_json()
 
 
 def source_uids(target: go.FigureWidget) -> list[str]:
