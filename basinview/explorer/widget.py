@@ -73,8 +73,11 @@ def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewStat
     from .state import as_span
 
     fields["span"] = as_span(span) if span is not None else default_span(problem, kind)
-    if kw.get("origin") is not None:
-        kw["origin"] = problem.flatten(kw["origin"], what="plane origin")
+    origin = kw.get("origin")
+    if origin is not None:
+        if isinstance(origin, (tuple, list)) and all(isinstance(v, (int, float, np.number)) for v in origin):
+            origin = np.asarray(origin, dtype=float)  # a flat vector (as ViewState stores it)
+        kw["origin"] = problem.flatten(origin, what="plane origin")
     if "starts" in kw:
         starts = kw.pop("starts")
         fields["start_points"] = [problem.flatten(p, what="start") for p in starts]
