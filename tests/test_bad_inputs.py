@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import contextlib
 import dataclasses
+import html
 import io
 import json
 import os
@@ -42,6 +43,7 @@ import equinox as eqx
 import jax
 import jax.numpy as jnp
 import numpy as np
+import pandas as pd
 import pytest
 
 from basinview.core import (
@@ -655,11 +657,87 @@ API_CASES: list[Case] = (
 )
 
 # ------------------------------------------------------------ widget entries
-# Reserved for the Explorer widget: its bad inputs (controls set to bad
-# values, bad clicks, failing callbacks) go here as entries of the same form,
-# with a check that the widget's last good view is unchanged. Added by the
-# engineer who owns the widget; this session leaves the list empty on purpose.
-WIDGET_CASES: list[Case] = []
+@dataclass(frozen=True)
+class WidgetCase:
+    """One bad input given to the Explorer (a control or a method) and what it must say.
+
+    ``act(explorer, folder)`` either sets controls (the error must appear in
+    the status line) or calls a method (the error must be raised). Either way
+    the last good view, the recorded snapshots and the user's files stay.
+    """
+
+    id: str
+    bad_input: str
+    act: Callable[[Any, Path], Any]
+    problem: tuple[str, ...]
+    fix: tuple[str, ...]
+    error: type[BasinviewError] = BasinviewError
+    xfail: str = ""
+
+
+def _control(name: str, value: Any) -> Callable[[Any, Path], None]:
+    def act(ex: Any, folder: Path) -> None:
+        getattr(ex.controls, name).value = value
+
+    return act
+
+
+def _set(**changes: Any) -> Callable[[Any, Path], None]:
+    return lambda ex, folder: ex.set(**changes)
+
+
+def _failing_update(ex: Any, folder: Path) -> None:
+    original = ex.computer.update
+
+    def broken(state):
+        raise RuntimeError("simulated failure inside a callback")
+
+    ex.computer.update = broken
+    try:
+        ex.controls.steps.value = ex.state.steps + 7
+    finally:
+        ex.computer.update = original
+
+
+W = WidgetCase
+# fmt: off
+WIDGET_CASES: list[WidgetCase] = [
+    W("widget-same-axes", "x axis set to the y axis's coordinate", _control("x_label", "y"),
+      ("must differ",), ("choose two different",)),
+    W("widget-no-starts", "random starts set to 0 with no clicked starts", _control("n_starts", 0),
+      ("no starts",), ("above 0", "click the map")),
+    W("widget-steps-zero", "steps set to 0", _set(steps=0),
+      ("steps",), ("between 1 and",)),
+    W("widget-negative-rate", "learning rate set to -1", _set(learning_rate=-1.0),
+      ("learning_rate", "out of range"), ("must be positive",)),
+    W("widget-huge-resolution", "resolution 100,000 per axis", _set(resolution=100_000),
+      ("resolution", "100000"), ("zoom in with span",)),
+    W("widget-empty-span", "a span whose range has min = max", _set(span=((1.0, 1.0), (0.0, 1.0))),
+      ("min < max",), ("must be positive",)),
+    W("widget-zero-spread", "start spread 0", _set(start_scale=0.0),
+      ("scale",), ("positive number",)),
+    W("widget-unknown-optimizer", "optimizer name not known", _set(optimizer="adamax"),
+      ("unknown optimizer 'adamax'",), ("choose one of", "optax")),
+    W("widget-degenerate-random-plane", "filter-normalised random plane where a leaf is zero",
+      _control("plane_kind", "random"), ("parallel",), ("normalise='none'",)),
+    W("widget-callback-raises", "an exception inside a widget callback", _failing_update,
+      ("unexpected RuntimeError", "simulated failure"), ("last good settings",)),
+    W("widget-save-wrong-suffix", "save_snapshot to a .pkl name",
+      lambda ex, d: ex.save_snapshot(d / "view.pkl"), ("end in .json",), ("view.json",), SettingsError),
+    W("widget-save-no-folder", "save_snapshot into a folder that does not exist",
+      lambda ex, d: ex.save_snapshot(d / "missing" / "view.json"), ("missing",), ("create",), SettingsError),
+    W("widget-from-other-plane", "Explorer.from_settings on settings of a plane through three points",
+      lambda ex, d: type(ex).from_settings(ex.problem, _through_settings(ex)),
+      ("'through' plane",), ("compute_view",), ParameterError),
+]
+# fmt: on
+del W
+
+
+def _through_settings(ex: Any) -> Settings:
+    raw = json.loads(ex.computer.settings().to_json())
+    raw["plane"] = {"kind": "through", "points": [[1.0, 1.0], [5.0, 3.0], [5.0, -3.0]]}
+    return Settings.from_json(json.dumps(raw))
 
 
 def _params_by_id(cases: list[Any]) -> list[Any]:
@@ -727,6 +805,49 @@ def test_catalogue_is_large_and_ids_are_unique():
     ids = [c.id for c in CATALOGUE]
     assert len(ids) == len(set(ids))
     assert len(API_CASES) >= 25
+
+
+@pytest.fixture(scope="module")
+def explorer_problem():
+    from basinview.scenarios import beacon
+
+    return beacon().problem
+
+
+@pytest.mark.parametrize("case", _params_by_id(WIDGET_CASES))
+def test_bad_widget_input_keeps_the_last_good_view(explorer_problem, case, tmp_path):
+    import plotly.io
+
+    from basinview import Explorer
+
+    ex = Explorer(explorer_problem, x="x", y="y", origin=np.array([5.0, 0.0]), span=6.0, resolution=21, steps=60, n_starts=3, start_scale=3.0)
+    snapshot = ex.record("kept")
+    folder = _user_folder(tmp_path)
+    before_files = folder_state(folder)
+    state, figure, table = ex.state, plotly.io.to_json(ex.main), ex.snapshots.copy()
+    raised = None
+    try:
+        case.act(ex, folder)
+    except BasinviewError as exc:
+        raised = exc
+    if raised is not None:
+        assert isinstance(raised, case.error), f"{type(raised).__name__}: {raised}"
+        message = str(raised)
+    else:
+        message = html.unescape(ex.status.value)
+        assert "⚠" in message, f"no error shown: {message}"
+    assert not _contains_all(message, case.problem), f"does not name the problem: {message}"
+    assert not _contains_all(message, case.fix), f"does not say how to fix it: {message}"
+    # nothing lost: view, controls, snapshots, files
+    assert ex.state == state
+    assert plotly.io.to_json(ex.main) == figure
+    pd.testing.assert_frame_equal(ex.snapshots, table)
+    assert ex.log[0] == snapshot
+    assert ex.controls.read(ex.state) == state
+    assert folder_state(folder) == before_files
+    # and the widget still works
+    ex.controls.learning_rate.value = 0.3
+    assert ex.state.learning_rate == pytest.approx(0.3)
 
 
 # ------------------------------------------------------------------ the CLI
@@ -933,7 +1054,10 @@ def catalogue_markdown() -> str:
         "|---|---|---|---|---|",
     ]
     for c in CATALOGUE:
-        error = c.error.__name__ if isinstance(c, Case) else "exit 2"
+        if isinstance(c, WidgetCase):
+            error = "status line" if c.error is BasinviewError else c.error.__name__
+        else:
+            error = c.error.__name__ if isinstance(c, Case) else "exit 2"
         status = f" **xfail: {c.xfail}**" if c.xfail else ""
         rows.append(
             f"| `{c.id}` | {c.bad_input} | {error} | "

@@ -261,7 +261,18 @@ def random_plane(
         "filter_axis": int(filter_axis),
         "origin": origin_list,
     }
-    return Plane(theta, dirs[0], dirs[1], ("direction 1", "direction 2"), spec)
+    try:
+        return Plane(theta, dirs[0], dirs[1], ("direction 1", "direction 2"), spec)
+    except ParameterError as exc:
+        if normalise == "none":
+            raise
+        zero = [leaf.name for leaf in problem.flattener.leaves if not np.any(theta[leaf.start : leaf.stop])]
+        where = f" (zero at the origin: {zero[:8]})" if zero else ""
+        raise ParameterError(
+            f"{exc} normalise={normalise!r} gives each leaf the size of the origin's leaf, so "
+            f"leaves that are zero there cannot move{where}; with few leaves the two "
+            "directions can become parallel. Use normalise='none' or another origin."
+        ) from None
 
 
 def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
