@@ -45,6 +45,7 @@ from .optimizers import (
 from .planes import Plane, axes_plane, hessian_plane, plane_from_spec, random_plane, through_plane
 from .problem import Problem
 from .settings import SCHEMA_VERSION, Settings, View, compute_view, record_settings
+from .sharding import use_all_cores
 from .starts import (
     Starts,
     combine_starts,
@@ -94,6 +95,7 @@ __all__ = [
     "bucket",
     "chunk_size_for",
     "classify",
+    "combine_starts",
     "compute_view",
     "count_compilations",
     "default_plane",
@@ -101,7 +103,6 @@ __all__ = [
     "descend",
     "evaluate_points",
     "evaluate_surface",
-    "combine_starts",
     "explicit_starts",
     "find_minima",
     "gauss_newton_matrix",
@@ -127,4 +128,5 @@ __all__ = [
     "starts_from_spec",
     "step_size_sweep",
     "through_plane",
+    "use_all_cores",
 ]

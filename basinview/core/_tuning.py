@@ -1,22 +1,45 @@
-"""Small helpers that keep compiled shapes few and memory bounded."""
+"""Small helpers that keep compiled shapes few, memory bounded and work cache-sized.
+
+Sizes of vectorised batches are chosen from the bytes one evaluation of the
+loss writes (its intermediates, read off the traced program) so that a
+batch stays within a few MiB: on a CPU, keeping the working set near the
+caches matters more than vector width. For large surfaces a few candidate
+chunk sizes are timed once and the fastest is kept with the problem.
+"""
 
 from __future__ import annotations
 
 import contextlib
-from collections.abc import Iterable, Iterator
+import time
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from typing import Any
 
 import jax
+import jax.extend.core
 import jax.monitoring
 import numpy as np
 
-__all__ = ["CompileCounter", "bucket", "chunk_size_for", "count_compilations", "progress_bar"]
+__all__ = [
+    "TUNE_WORK_BYTES",
+    "CompileCounter",
+    "bucket",
+    "chunk_size_for",
+    "count_compilations",
+    "evaluation_bytes",
+    "fastest",
+    "progress_bar",
+    "runs_per_call_for",
+]
 
 _COMPILE_EVENT = "/jax/core/compile/backend_compile_duration"
 
-# Bytes of loss intermediates one vectorised chunk may touch; a few MiB keeps
-# a chunk inside the CPU caches, which matters more than vector width here.
+# Bytes of loss intermediates one vectorised chunk of grid points may write.
 CHUNK_BUDGET_BYTES = 8 * 2**20
+# Bytes of value-and-gradient intermediates one step of a batch of runs may write.
+RUN_BUDGET_BYTES = 12 * 2**20
+# Work (bytes of intermediates written in total) from which timing a few
+# vectorisation sizes once per problem pays off: a few seconds of computing.
+TUNE_WORK_BYTES = 16 * 2**30
 
 
 def bucket(value: int, *, minimum: int = 1) -> int:
@@ -48,16 +71,82 @@ def data_bytes(problem: Any) -> int:
     )
 
 
-def chunk_size_for(problem: Any) -> int:
-    """Loss evaluations to vectorise at once (a power of two from 1 to 1024).
+def _jaxpr_bytes(jaxpr: Any) -> int:
+    total = 0
+    for eqn in jaxpr.eqns:
+        for var in eqn.outvars:
+            aval = getattr(var, "aval", None)
+            shape = getattr(aval, "shape", None)
+            dtype = getattr(aval, "dtype", None)
+            if shape is not None and dtype is not None:
+                total += int(np.prod(shape, dtype=np.int64)) * np.dtype(dtype).itemsize
+        for sub in jax.extend.core.jaxprs_in_params(eqn.params):
+            total += _jaxpr_bytes(sub)
+    return total
 
-    The cost of one loss evaluation is estimated from the data size (a loss
-    touches each data value a few times) and the parameter count.
+
+def evaluation_bytes(problem: Any, *, gradient: bool = False) -> int:
+    """Bytes of intermediates one evaluation of the loss (and gradient) writes.
+
+    Read off the traced program of one unbatched evaluation (no compilation)
+    and kept with the problem. The body of a loop (chunked data) counts once.
     """
-    per_point = 2 * max(data_bytes(problem), 8 * problem.size, 1)
-    chunk = CHUNK_BUDGET_BYTES // per_point
-    chunk = int(2 ** np.floor(np.log2(max(chunk, 1))))
+
+    def build() -> int:
+        fn = jax.value_and_grad(problem.flat_loss) if gradient else problem.flat_loss
+        theta = jax.ShapeDtypeStruct((problem.size,), problem.dtype)
+        data = jax.tree_util.tree_map(
+            lambda a: jax.ShapeDtypeStruct(a.shape, a.dtype), problem.data
+        )
+        jaxpr = jax.make_jaxpr(fn)(theta, data)
+        return max(_jaxpr_bytes(jaxpr.jaxpr), 8 * problem.size, 64)
+
+    return int(problem.cached(("evaluation-bytes", gradient), build))
+
+
+def _pow2_floor(x: float) -> int:
+    return int(2 ** np.floor(np.log2(max(x, 1.0))))
+
+
+def chunk_size_for(problem: Any) -> int:
+    """Grid points to vectorise at once (a power of two from 1 to 1024).
+
+    As many as keep the intermediates of one chunk within
+    ``CHUNK_BUDGET_BYTES`` (see :func:`evaluation_bytes`).
+    """
+    chunk = _pow2_floor(CHUNK_BUDGET_BYTES / evaluation_bytes(problem))
     return int(min(max(chunk, 1), 1024))
+
+
+def runs_per_call_for(problem: Any) -> int:
+    """Descent runs to step together in one compiled loop (a power of two, 4 to 4096).
+
+    As many as keep one step's value-and-gradient intermediates within
+    ``RUN_BUDGET_BYTES``; more runs only stream more memory per step, fewer
+    pay the per-step cost of the loop more often.
+    """
+    runs = _pow2_floor(RUN_BUDGET_BYTES / evaluation_bytes(problem, gradient=True))
+    return int(min(max(runs, 4), 4096))
+
+
+def fastest(candidates: Sequence[Any], run: Callable[[Any], Callable[[], Any]]) -> Any:
+    """The candidate whose workload runs fastest (best of two timed runs each).
+
+    ``run(candidate)`` prepares (and compiles) the candidate's workload and
+    returns a function that executes it once and blocks until it is done.
+    """
+    best, best_time = candidates[0], float("inf")
+    for candidate in candidates:
+        go = run(candidate)
+        go()  # compile and warm up
+        elapsed = float("inf")
+        for _ in range(2):
+            start = time.perf_counter()
+            go()
+            elapsed = min(elapsed, time.perf_counter() - start)
+        if elapsed < best_time:
+            best, best_time = candidate, elapsed
+    return best
 
 
 def progress_bar(
@@ -77,7 +166,7 @@ class CompileCounter:
     def __init__(self) -> None:
         self.count = 0
 
-    def _listener(self, event: str, duration: float, **kwargs: Any) -> None:
+    def _listener(self, event: str, duration_secs: float, **kwargs: str | int) -> None:
         if event == _COMPILE_EVENT:
             self.count += 1
 

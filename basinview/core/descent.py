@@ -27,11 +27,20 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
-from ._tuning import bucket, data_bytes, progress_bar
+from ._tuning import (
+    TUNE_WORK_BYTES,
+    bucket,
+    data_bytes,
+    evaluation_bytes,
+    fastest,
+    progress_bar,
+    runs_per_call_for,
+)
 from .errors import ParameterError
 from .optimizers import Oracle, UpdateRule, check_hyper, get_rule
 from .planes import Plane, axes_plane, random_plane
 from .problem import Problem
+from .sharding import batch_devices, replicated, shard_batch, split
 from .starts import Starts, as_starts
 
 __all__ = ["MAX_STEPS", "STATUSES", "Runs", "default_plane", "default_tolerances", "descend"]
@@ -234,9 +243,26 @@ def _batch_rows(problem: Problem, batch_size: int | None) -> int | None:
 
 
 def _build_run(
-    problem: Problem, rule: UpdateRule, n_runs: int, n_steps: int, batch: int | None
+    problem: Problem,
+    rule: UpdateRule,
+    n_runs: int,
+    n_steps: int,
+    batch: int | None,
+    devices: tuple[Any, ...],
+    group: int | None = None,
 ) -> Any:
-    """Compile-once function running ``n_runs`` runs for up to ``n_steps`` steps."""
+    """Compile-once function running ``n_runs`` runs per device for up to ``n_steps`` steps.
+
+    Each step evaluates the runs ``group`` at a time (vectorised within a
+    group, one group after the other; all at once when ``group`` is None).
+    With several devices each one runs its own share of the runs in its own
+    loop (no communication; a device stops when its runs have stopped).
+    """
+
+    def by_group(fn: Any, args: tuple[Any, ...]) -> Any:
+        if group is None or group >= n_runs:
+            return jax.vmap(fn)(*args)
+        return jax.lax.map(lambda a: fn(*a), args, batch_size=group)
 
     def data_for(key: jax.Array, k: jax.Array, data: Any) -> Any:
         if batch is None:
@@ -273,7 +299,7 @@ def _build_run(
         dtype = theta0.dtype
         nan = jnp.array(jnp.nan, dtype)
         state0 = jax.vmap(rule.init)(theta0, hyper)
-        f0, g0 = jax.vmap(evaluate, in_axes=(0, 0, None, None))(theta0, keys, 0, data)
+        f0, g0 = by_group(lambda t, key: evaluate(t, key, 0, data), (theta0, keys))
         gn0 = jnp.linalg.norm(g0, axis=1)
         ab0, res0 = jax.vmap(project, in_axes=(0, None, None, None))(theta0, origin, proj, dirs)
         bad0 = ~jnp.isfinite(f0) | ~jnp.isfinite(gn0)
@@ -312,8 +338,9 @@ def _build_run(
 
         def body(carry):
             k, theta, state, f, g, status, running, stop, rec = carry
-            theta1, state1, f1, g1 = jax.vmap(advance, in_axes=(0, 0, 0, 0, 0, None, None))(
-                theta, g, state, hyper, keys, k, data
+            theta1, state1, f1, g1 = by_group(
+                lambda t, gr, st, hy, key: advance(t, gr, st, hy, key, k, data),
+                (theta, g, state, hyper, keys),
             )
             gn1 = jnp.linalg.norm(g1, axis=1)
             gn = jnp.linalg.norm(g, axis=1)
@@ -360,14 +387,78 @@ def _build_run(
         stop = jnp.where(running, k, stop)
         return theta, status, stop, rec
 
-    return jax.jit(run)
+    # Batch axis of each argument / output: runs are split, the rest is whole.
+    in_batch = (0, 0, 0, None, None, None, None, None, None, 0, None)
+    out_batch = (0, 0, 0, 1)
+    return shard_batch(run, devices, in_batch, out_batch)
 
 
 def _runs_per_call(problem: Problem, n_runs: int) -> int:
+    """Runs per device and call: bucketed, capped by memory and by cache-sized steps.
+
+    The count does not depend on the number of devices: every device runs
+    exactly the program one device would run, so results are the same
+    whatever the device count. Sweeps of more runs than one call holds are
+    spread over the devices; smaller sweeps run on one device.
+    """
     per_run = 6 * max(data_bytes(problem), 8 * problem.size, 1)
     cap = max(8, min(4096, _RUN_BUDGET_BYTES // per_run))
     cap = 2 ** math.floor(math.log2(cap))
+    cap = min(cap, runs_per_call_for(problem))
     return min(bucket(n_runs), cap)
+
+
+_GROUP_CANDIDATES = (1, 2, 8)
+
+
+def _tuned_group(problem: Problem, batch: int | None, theta: np.ndarray, device: Any) -> int:
+    """How many runs to vectorise together in a step, timed once per problem.
+
+    Vectorising many runs at once is not always fastest on a CPU: batched
+    intermediates can fall out of the caches or need transposes that one run
+    alone avoids. Each candidate group size is timed on a few steps' worth
+    of gradient evaluations of these runs; the fastest is kept.
+    """
+
+    def tune() -> int:
+        data = problem.cached(("data-on", (device,)), lambda: jax.device_put(problem.data, device))
+        if batch is not None:
+            data = jax.tree_util.tree_map(lambda d: d[:batch], data)
+        vg = jax.value_and_grad(problem.flat_loss)
+        runs = theta.shape[0]
+        candidates = [g for g in _GROUP_CANDIDATES if g < runs and runs % g == 0] + [runs]
+
+        def make(group: int) -> Any:
+            def steps(th: jax.Array, data: Any) -> jax.Array:
+                def one(t: jax.Array) -> tuple[jax.Array, jax.Array]:
+                    return vg(t, data)
+
+                def body(_: Any, th: jax.Array) -> jax.Array:
+                    if group >= runs:
+                        _f, g = jax.vmap(one)(th)
+                    else:
+                        _f, g = jax.lax.map(one, th, batch_size=group)
+                    return th - jnp.asarray(1e-30, th.dtype) * g
+
+                return jax.lax.fori_loop(0, 3, body, th)
+
+            fn = jax.jit(steps)
+            th = jax.device_put(theta, device)
+            return lambda: fn(th, data).block_until_ready()
+
+        return int(fastest(candidates, make))
+
+    return int(problem.cached(("descent-group", batch), tune))
+
+
+def _group_for(tuned: int | None, per_device: int) -> int | None:
+    """The tuned group size adapted to ``per_device`` runs (a divisor), None for all."""
+    if tuned is None or tuned >= per_device:
+        return None
+    group = tuned
+    while per_device % group:
+        group //= 2
+    return max(group, 1)
 
 
 def descend(
@@ -385,6 +476,7 @@ def descend(
     batch_size: int | None = None,
     seed: int = 0,
     progress: bool | None = None,
+    devices: Any = None,
 ) -> Runs:
     """Run an update rule from many starts and hyper-parameter settings at once.
 
@@ -416,6 +508,9 @@ def descend(
             and step: runs from the same start see the same minibatches).
         seed: seed of the minibatch sampler.
         progress: show a progress bar over batches of runs.
+        devices: devices that share the runs: ``None`` (all that JAX shows,
+            see :func:`~basinview.core.use_all_cores`), a count, or a list of
+            devices. Results do not depend on the number of devices.
 
     Returns:
         :class:`Runs`, with ``.table`` as a pandas DataFrame.
@@ -456,43 +551,71 @@ def descend(
     }
     theta_all = start_set.points[start_index].astype(dtype)
 
-    per_call = _runs_per_call(problem, n_runs)
+    devs = batch_devices(devices)
+    per_device = _runs_per_call(problem, n_runs)
+    if n_runs <= per_device:
+        devs = devs[:1]  # one call's worth of runs: splitting it would change its shapes
+    n_dev = len(devs)
+    per_call = per_device * n_dev
     steps_b = bucket(steps, minimum=8)
+    share = 1.0
+    if batch is not None:
+        share = batch / jax.tree_util.tree_leaves(problem.data)[0].shape[0]
+    work = n_runs * steps * evaluation_bytes(problem, gradient=True) * share
+    tuned = None
+    if work >= TUNE_WORK_BYTES and per_device > 1:
+        first = theta_all[np.arange(per_device) % n_runs]
+        tuned = _tuned_group(problem, batch, first, devs[0])
+    group = _group_for(tuned, per_device)
     fn = problem.compiled(
-        ("descent", rule.init, rule.step, per_call, steps_b, batch),
-        lambda: _build_run(problem, rule, per_call, steps_b, batch),
+        ("descent", rule.init, rule.step, per_device, steps_b, batch, devs, group),
+        lambda: _build_run(problem, rule, per_device, steps_b, batch, devs, group),
     )
-    tols = tuple(jnp.asarray(x, dtype) for x in (grad_tol, loss_tol, divergence_factor))
-    consts = [jnp.asarray(x) for x in (origin, proj, dirs)]
+    if n_dev == 1:
+        whole: Any = devs[0]
+        shared: Any = devs[0]
+    else:
+        whole, shared = replicated(devs), split(devs)
+    data = problem.cached(("data-on", devs), lambda: jax.device_put(problem.data, whole))
+    tols = jax.device_put(
+        tuple(np.asarray(x, dtype) for x in (grad_tol, loss_tol, divergence_factor)), whole
+    )
+    consts = jax.device_put([np.asarray(x) for x in (origin, proj, dirs)], whole)
+    max_steps = jax.device_put(np.asarray(steps, np.int32), whole)
+    seed_arr = jax.device_put(np.uint32(seed), whole)
 
-    outs: list[Any] = []
-    chunks = range(0, n_runs, per_call)
-    show = progress if progress is not None else len(chunks) > 4
-    for lo in progress_bar(chunks, total=len(chunks), show=show, desc="descent"):
+    # Launch every call first (JAX dispatches asynchronously), then collect.
+    pending = []
+    for lo in range(0, n_runs, per_call):
         hi = min(lo + per_call, n_runs)
         pad = per_call - (hi - lo)
         idx = np.concatenate([np.arange(lo, hi), np.full(pad, lo)])
         active = np.arange(per_call) < (hi - lo)
-        hyper_c = {k: jnp.asarray(v[idx], dtype) for k, v in hyper_rows.items()}
-        theta, status, stop, rec = fn(
-            jnp.asarray(theta_all[idx]),
-            hyper_c,
-            jnp.asarray(active),
-            jnp.asarray(steps, jnp.int32),
-            tols,
-            *consts,
-            np.uint32(seed),
-            start_index[idx].astype(np.int32),
-            problem.data,
+        hyper_c = {k: v[idx].astype(dtype) for k, v in hyper_rows.items()}
+        batch_args = jax.device_put(
+            (theta_all[idx], hyper_c, active, start_index[idx].astype(np.int32)), shared
         )
-        m = hi - lo
-        outs.append(jax.tree_util.tree_map(lambda x: np.asarray(x), (theta, status, stop, rec)))
-        outs[-1] = (
-            outs[-1][0][:m],
-            outs[-1][1][:m],
-            outs[-1][2][:m],
-            {k: v[:, :m] for k, v in outs[-1][3].items()},
+        pending.append(
+            (
+                hi - lo,
+                fn(
+                    batch_args[0],
+                    batch_args[1],
+                    batch_args[2],
+                    max_steps,
+                    tols,
+                    *consts,
+                    seed_arr,
+                    batch_args[3],
+                    data,
+                ),
+            )
         )
+    outs: list[Any] = []
+    show = progress if progress is not None else len(pending) > 4
+    for m, result in progress_bar(pending, total=len(pending), show=show, desc="descent"):
+        theta, status, stop, rec = jax.tree_util.tree_map(np.asarray, result)
+        outs.append((theta[:m], status[:m], stop[:m], {k: v[:, :m] for k, v in rec.items()}))
 
     final = np.concatenate([o[0] for o in outs])
     status_code = np.concatenate([o[1] for o in outs])

@@ -22,7 +22,10 @@ import numpy as np
 from .errors import LossError, ParameterError
 from .pytrees import Flattener, make_flattener
 
-__all__ = ["Problem", "loss_name"]
+__all__ = ["REDUCTIONS", "Problem", "accumulate_rows", "loss_name"]
+
+REDUCTIONS = ("mean", "sum")
+"""How a loss combines its rows: ``"mean"`` (e.g. ``jnp.mean``) or ``"sum"``."""
 
 _TRACE_ERRORS = (
     jax.errors.ConcretizationTypeError,
@@ -66,6 +69,78 @@ def _as_data(data: tuple[Any, ...]) -> tuple[Any, ...]:
     return tuple(jax.tree_util.tree_map(convert, d) for d in data)
 
 
+def _row_count(data: tuple[Any, ...]) -> int:
+    return int(jax.tree_util.tree_leaves(data)[0].shape[0])
+
+
+def accumulate_rows(
+    loss: Callable[..., Any], params: Any, data: tuple[Any, ...], rows: int, reduction: str
+) -> jax.Array:
+    """``loss(params, *data)`` accumulated over chunks of ``rows`` rows of the data.
+
+    Valid when the loss is a mean (``reduction="mean"``) or a sum
+    (``"sum"``) of one term per row: then the whole-data loss is the
+    row-weighted mean, or the sum, of the chunk losses. The chunks run in a
+    ``lax.scan`` whose body is rematerialised (``jax.checkpoint``), so the
+    memory of the loss, its gradient and Hessian-vector products grows with
+    ``rows``, not with the number of rows of the data. A last, shorter
+    chunk takes the remaining rows.
+    """
+    n = _row_count(data)
+    full, rest = divmod(n, rows)
+    if full == 0 or (full == 1 and rest == 0):
+        return loss(params, *data)
+    piece = jax.checkpoint(lambda p, chunk: loss(p, *chunk))
+    head = jax.tree_util.tree_map(
+        lambda a: a[: full * rows].reshape((full, rows, *a.shape[1:])), data
+    )
+    first = jax.tree_util.tree_map(lambda a: a[0], head)
+    out = jax.eval_shape(piece, params, first)
+
+    def body(total: jax.Array, chunk: Any) -> tuple[jax.Array, None]:
+        return total + piece(params, chunk), None
+
+    total, _ = jax.lax.scan(body, jnp.zeros(out.shape, out.dtype), head)
+    if reduction == "mean":
+        total = total * jnp.asarray(rows / n, out.dtype)
+    if rest:
+        tail = jax.tree_util.tree_map(lambda a: a[full * rows :], data)
+        value = piece(params, tail)
+        if reduction == "mean":
+            value = value * jnp.asarray(rest / n, out.dtype)
+        total = total + value
+    return total
+
+
+def _check_chunking(
+    data: tuple[Any, ...], rows: Any, reduction: Any
+) -> tuple[int | None, str | None]:
+    if rows is None:
+        if reduction is not None:
+            raise ParameterError(
+                "reduction= only matters with data_chunk_rows=...; give both or neither."
+            )
+        return None, None
+    if isinstance(rows, bool) or not isinstance(rows, (int, np.integer)) or rows < 1:
+        raise ParameterError(f"data_chunk_rows must be a positive integer; got {rows!r}.")
+    if reduction not in REDUCTIONS:
+        raise ParameterError(
+            f"data_chunk_rows needs reduction='mean' or 'sum' (how the loss combines its "
+            f"rows: jnp.mean or jnp.sum over them); got reduction={reduction!r}."
+        )
+    leaves = jax.tree_util.tree_leaves(data)
+    if not leaves:
+        raise ParameterError("data_chunk_rows needs data, but the problem has none.")
+    lead = sorted({int(leaf.shape[0]) if leaf.ndim else -1 for leaf in leaves})
+    if len(lead) != 1 or lead[0] < 1:
+        raise ParameterError(
+            "data_chunk_rows splits every data array along its first axis (rows), so all "
+            f"data arrays must have the same number of rows; got leading sizes {lead} "
+            "(-1: a scalar). Pass constants to the loss with functools.partial instead."
+        )
+    return int(rows), str(reduction)
+
+
 class Problem:
     """A loss, its parameters and its data, seen as a function of one flat vector.
 
@@ -76,6 +151,17 @@ class Problem:
             default origin of planes.
         *data: arrays (or pytrees of arrays) passed to the loss after ``params``.
         name: a name for records; defaults to the loss's qualified name.
+        data_chunk_rows: if given, the loss is evaluated on chunks of this
+            many rows of the data at a time and the results are combined, so
+            memory no longer grows with the number of rows (see
+            :func:`accumulate_rows`). Needs ``reduction``.
+        reduction: ``"mean"`` if the loss is a mean over the rows of the data
+            (``jnp.mean`` of per-row terms), ``"sum"`` if it is a sum. With
+            ``"mean"`` a term that does not depend on the data (a penalty on
+            the weights) is also kept exact, since the chunk weights add up to
+            one; with ``"sum"`` it would be counted once per chunk, so leave
+            such terms out or use ``"mean"``. The contract is checked on the
+            first rows of the data when the problem is built.
 
     The problem is immutable. Compiled functions are built once per problem
     and per static configuration and reused; changing only values (parameters,
@@ -99,6 +185,8 @@ class Problem:
         params: Any,
         *data: Any,
         name: str | None = None,
+        data_chunk_rows: int | None = None,
+        reduction: str | None = None,
     ) -> None:
         if not callable(loss):
             raise LossError(
@@ -111,8 +199,10 @@ class Problem:
         self._params = params
         self._flat = flattener
         self._data = _as_data(data)
+        self._chunk_rows, self._reduction = _check_chunking(self._data, data_chunk_rows, reduction)
         self._name = name or loss_name(loss)
         self._compiled: dict[Hashable, Callable[..., Any]] = {}
+        self._cache: dict[Hashable, Any] = {}
         self._fingerprint: str | None = None
         self._theta0 = theta0
         theta0.setflags(write=False)
@@ -162,6 +252,16 @@ class Problem:
     def flattener(self) -> Flattener:
         return self._flat
 
+    @property
+    def data_chunk_rows(self) -> int | None:
+        """Rows per chunk when the loss is accumulated over chunks of the data, else None."""
+        return self._chunk_rows
+
+    @property
+    def reduction(self) -> str | None:
+        """``"mean"`` or ``"sum"`` with :attr:`data_chunk_rows`, else None."""
+        return self._reduction
+
     def __repr__(self) -> str:
         return f"Problem({self._name}, n={self.size}, dtype={self.dtype})"
 
@@ -185,8 +285,16 @@ class Problem:
 
     # ------------------------------------------------------------ functions
     def flat_loss(self, theta: jax.Array, data: tuple[Any, ...]) -> jax.Array:
-        """Pure loss of a flat vector; ``data`` is passed explicitly (traceable)."""
-        return self._loss(self._flat.unravel(theta), *data)
+        """Pure loss of a flat vector; ``data`` is passed explicitly (traceable).
+
+        With :attr:`data_chunk_rows` the loss is accumulated over chunks of
+        the rows of ``data`` (see :func:`accumulate_rows`).
+        """
+        params = self._flat.unravel(theta)
+        if self._chunk_rows is None:
+            return self._loss(params, *data)
+        assert self._reduction is not None
+        return accumulate_rows(self._loss, params, data, self._chunk_rows, self._reduction)
 
     def compiled(
         self, key: Hashable, build: Callable[[], Callable[..., Any]]
@@ -197,6 +305,13 @@ class Problem:
             fn = build()
             self._compiled[key] = fn
         return fn
+
+    def cached(self, key: Hashable, build: Callable[[], Any]) -> Any:
+        """A value derived from this problem (a tuned size, a copy of the data on
+        some devices), computed once by ``build()`` and kept with the problem."""
+        if key not in self._cache:
+            self._cache[key] = build()
+        return self._cache[key]
 
     def _vec(self, theta: Any) -> jax.Array:
         theta = jnp.asarray(theta, dtype=self.dtype)
@@ -299,12 +414,34 @@ class Problem:
                 f"the loss must return a real floating-point scalar; {self._name} "
                 f"returned dtype {out.dtype}."
             )
+        if self._chunk_rows is not None:
+            self._check_row_contract(out.dtype)
         value = float(self.value(self._theta0))
         if not np.isfinite(value):
             raise LossError(
                 f"the loss is {value} at the initial parameters. Check the data for "
                 "NaN/inf and the loss for log(0), division by zero or overflow; or "
                 "start from other parameters."
+            )
+
+    def _check_row_contract(self, dtype: Any) -> None:
+        """The chunked loss equals the whole loss on the first few rows."""
+        rows = min(_row_count(self._data), 7)
+        if rows < 2:
+            return
+        sub = jax.tree_util.tree_map(lambda a: a[:rows], self._data)
+        params = self._flat.unravel(jnp.asarray(self._theta0))
+        whole = float(self._loss(params, *sub))
+        assert self._reduction is not None
+        parts = float(accumulate_rows(self._loss, params, sub, 3, self._reduction))
+        tol = 1e-4 if np.dtype(dtype).itemsize <= 4 else 1e-9
+        if np.isfinite(whole) and not abs(parts - whole) <= tol * max(abs(whole), 1.0):
+            raise LossError(
+                f"data_chunk_rows needs a loss that is a {self._reduction} over the rows of "
+                f"the data, but {self._name} is not: on the first {rows} rows the loss is "
+                f"{whole!r} while combining chunks of 3 rows gives {parts!r}. Use "
+                f"reduction='{'sum' if self._reduction == 'mean' else 'mean'}' if the loss "
+                "takes the other reduction, or build the problem without data_chunk_rows."
             )
 
     def _data_shapes(self) -> list[Any]:
