@@ -5,10 +5,10 @@ or ``python -m benchmarks.memory basin --resolution 50 40 --steps 300``; it
 prints one JSON object.
 
 Method: the process resident set size (RSS) from ``/proc/self/status``.
-After the data and the problem are built, the current RSS is noted and the
-kernel's high-water mark (``VmHWM``) is reset by writing ``5`` to
-``/proc/self/clear_refs``; the workload runs; the new high-water mark minus
-the noted RSS is the memory the workload added at its peak. The workload
+After the data and the problem are built, the kernel's high-water mark
+(``VmHWM``) is reset by writing ``5`` to ``/proc/self/clear_refs`` and the
+current RSS is noted; the workload runs; the new high-water mark minus the
+noted RSS is the memory the workload added at its peak. The workload
 runs twice: the first run includes compilation (XLA's compiler uses memory
 too), the second shows the steady state. XLA's CPU buffers live in the
 process heap, so RSS sees them; ``tracemalloc`` would not.
@@ -45,8 +45,8 @@ def _reset_peak() -> bool:
 
 def measure_peak(work: Callable[[], Any]) -> dict[str, float]:
     """Run ``work()`` and report the RSS it added at its peak (MiB) and its time."""
+    reset = _reset_peak()  # the high-water mark restarts from the current RSS
     before = _status_kib("VmRSS")
-    reset = _reset_peak()
     start = time.perf_counter()
     work()
     seconds = time.perf_counter() - start

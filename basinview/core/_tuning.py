@@ -10,6 +10,7 @@ chunk sizes are timed once and the fastest is kept with the problem.
 from __future__ import annotations
 
 import contextlib
+import math
 import time
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from typing import Any
@@ -129,24 +130,38 @@ def runs_per_call_for(problem: Any) -> int:
     return int(min(max(runs, 4), 4096))
 
 
-def fastest(candidates: Sequence[Any], run: Callable[[Any], Callable[[], Any]]) -> Any:
-    """The candidate whose workload runs fastest (best of two timed runs each).
+def fastest(
+    candidates: Sequence[Any],
+    run: Callable[[Any], Callable[[], Any]],
+    *,
+    rounds: int = 3,
+    min_seconds: float = 0.01,
+) -> Any:
+    """The candidate whose workload runs fastest.
 
     ``run(candidate)`` prepares (and compiles) the candidate's workload and
     returns a function that executes it once and blocks until it is done.
+    Every candidate is warmed up first; then the candidates are timed in
+    interleaved rounds (so a change in the machine's load hits all of them
+    alike), each timing repeating the workload for at least ``min_seconds``,
+    and the best time per execution decides.
     """
-    best, best_time = candidates[0], float("inf")
+    goes = []
     for candidate in candidates:
         go = run(candidate)
         go()  # compile and warm up
-        elapsed = float("inf")
-        for _ in range(2):
+        start = time.perf_counter()
+        go()
+        once = max(time.perf_counter() - start, 1e-6)
+        goes.append((go, max(1, math.ceil(min_seconds / once))))
+    best = [float("inf")] * len(candidates)
+    for _ in range(rounds):
+        for i, (go, reps) in enumerate(goes):
             start = time.perf_counter()
-            go()
-            elapsed = min(elapsed, time.perf_counter() - start)
-        if elapsed < best_time:
-            best, best_time = candidate, elapsed
-    return best
+            for _ in range(reps):
+                go()
+            best[i] = min(best[i], (time.perf_counter() - start) / reps)
+    return candidates[int(np.argmin(best))]
 
 
 def progress_bar(
