@@ -14,8 +14,8 @@ CLI entries run ``python -m basinview ...`` in a fresh folder and assert exit
 code 2, a one-line message on stderr without a traceback, and that no file in
 the folder was written, replaced or deleted.
 
-Entries for parts this session may not edit are marked ``xfail`` with the
-fix they need (strict: they fail loudly once fixed, so the mark gets removed).
+An entry whose fix is pending may carry ``xfail="<the fix>"``; it then runs
+as a strict xfail, which fails loudly once fixed so the mark gets removed.
 
 ``python -m tests.test_bad_inputs`` prints the catalogue as a Markdown table
 (the table in DEVELOPERS.md is generated that way).
@@ -308,36 +308,24 @@ LOSS_CASES = [
       ParameterError, ("data must be arrays", "str"), ("functools.partial",)),
     C("loss-raises", "loss raises ZeroDivisionError",
       lambda w, d: Problem(raising_loss, {"x": 1.0}),
-      LossError, ("raised ZeroDivisionError",), ("loss(params, *data)",),
-      xfail="problem.py: the LossError for a loss that raises names the exception but no "
-            "fix; add one, e.g. 'call loss(params, *data) yourself to see the full traceback'"),
+      LossError, ("raised ZeroDivisionError",), ("loss(params, *data)",)),
     C("loss-integer-output", "loss returns an integer",
       lambda w, d: Problem(integer_loss, {"x": 1.5}),
-      LossError, ("floating-point", "int32"), ("convert",),
-      xfail="problem.py: the error for an integer loss value gives no fix; add e.g. "
-            "'convert the result, e.g. jnp.asarray(value, dtype=float)'"),
+      LossError, ("floating-point", "int32"), ("convert",)),
     C("loss-not-differentiable", "loss goes through jax.pure_callback (no gradient)",
       lambda w, d: descend(Problem(callback_loss, {"x": 1.0, "y": 1.0}), np.ones(2), steps=2),
-      LossError, ("differentiat",), ("custom_jvp",),
-      xfail="problem.py: Problem should check at the edge that the gradient can be traced "
-            "(jax.eval_shape of jax.grad) and raise LossError naming jax.numpy / "
-            "jax.custom_jvp; today descend raises a raw ValueError from JAX"),
+      LossError, ("differentiat",), ("custom_jvp",)),
     C("loss-raises-at-run-time", "loss raises (equinox.error_if) only for x > 3, in descend",
       lambda w, d: descend(
           Problem(guarded_loss, {"x": 0.0, "y": 0.0}), np.array([[0.0, 0.0], [5.0, 0.0]]),
           steps=3),
-      LossError, ("raised",), ("jnp.where",),
-      xfail="descend.py: a run-time error inside the loss escapes as a raw JaxRuntimeError; "
-            "catch it and raise LossError naming the loss, suggesting to return NaN with "
-            "jnp.where so only the affected runs stop"),
+      LossError, ("raised",), ("jnp.where",)),
     C("loss-raises-on-surface", "loss raises (equinox.error_if) in part of the plane",
       lambda w, d: evaluate_surface(
           Problem(guarded_loss, {"x": 0.0, "y": 0.0}),
           axes_plane(Problem(guarded_loss, {"x": 0.0, "y": 0.0}), "x", "y"),
           span=5.0, resolution=5),
-      LossError, ("raised",), ("jnp.where",),
-      xfail="surface.py: a run-time error inside the loss escapes as a raw JaxRuntimeError; "
-            "raise LossError and suggest returning NaN with jnp.where (gaps in the surface)"),
+      LossError, ("raised",), ("jnp.where",)),
 ]
 
 PARAMETER_CASES = [
@@ -409,9 +397,7 @@ PLANE_CASES = [
     C("plane-other-problem-descent", "a plane of a 3-parameter problem for descend",
       lambda w, d: descend(w.problem, np.zeros(2),
                            plane=axes_plane(w.data_problem, *w.data_problem.labels[:2])),
-      ParameterError, ("3 coordinates",), ("build the plane from this problem",),
-      xfail="descend.py: the plane-size error names the sizes but no fix; add "
-            "'build the plane from this problem' as evaluate_surface does"),
+      ParameterError, ("3 coordinates",), ("build the plane from this problem",)),
     C("plane-spec-kind", "a plane spec of unknown kind",
       lambda w, d: plane_from_spec(w.problem, {"kind": "magic"}),
       ParameterError, ("unknown plane kind 'magic'",), ("use its .spec",)),
@@ -423,17 +409,13 @@ PLANE_CASES = [
 SURFACE_CASES = [
     C("span-absurd", "span 1e20 (a grid no float can resolve)",
       lambda w, d: evaluate_surface(w.problem, w.plane, span=1e20),
-      ParameterError, ("absurdly large",), ("choose",),
-      xfail="surface.py: the 'absurdly large' span error gives no fix; add e.g. "
-            "'choose a span below 1e12, around the scale of the parameters'"),
+      ParameterError, ("absurdly large",), ("choose",)),
     C("span-negative", "a negative half-width",
       lambda w, d: evaluate_surface(w.problem, w.plane, span=-1.0),
       ParameterError, ("min < max",), ("half-width s must be positive",)),
     C("span-text", "span given as text 'big'",
       lambda w, d: evaluate_surface(w.problem, w.plane, span="big"),
-      ParameterError, ("span",), ("number",),
-      xfail="surface.py: _ranges lets numpy's raw ValueError ('could not convert string to "
-            "float') escape; raise ParameterError 'span must be a number s, a pair ...'"),
+      ParameterError, ("span",), ("number",)),
     C("resolution-huge", "resolution 10**6 per axis (10^12 points)",
       lambda w, d: evaluate_surface(w.problem, w.plane, resolution=10**6),
       ParameterError, ("between 2 and 4001", "1000000"), ("zoom in with span",)),
@@ -496,9 +478,7 @@ DESCENT_CASES = [
       ParameterError, ("batch_size", "50"), ("integer from 1 to 3",)),
     C("batch-without-data", "minibatches for a problem without data",
       lambda w, d: descend(w.problem, w.starts, batch_size=4),
-      ParameterError, ("minibatches need data",), ("batch_size=None",),
-      xfail="descend.py: 'minibatches need data' gives no fix; add 'pass the data to "
-            "Problem(loss, params, *data) or leave batch_size=None'"),
+      ParameterError, ("minibatches need data",), ("batch_size=None",)),
     C("tolerance-negative", "grad_tol -1",
       lambda w, d: descend(w.problem, w.starts, grad_tol=-1.0),
       ParameterError, ("grad_tol", "-1"), ("non-negative",)),
@@ -507,9 +487,7 @@ DESCENT_CASES = [
       ParameterError, ("divergence_factor",), ("must be positive",)),
     C("seed-too-large", "a minibatch seed of 2**40",
       lambda w, d: descend(w.problem, w.starts, seed=2**40, steps=5),
-      ParameterError, ("seed",), ("2**32",),
-      xfail="descend.py: seeds above 2**32 - 1 crash with a raw OverflowError in "
-            "np.uint32(seed); validate 0 <= seed < 2**32 and say so"),
+      ParameterError, ("seed",), ("2**32",)),
 ]
 
 ANALYSIS_CASES = [
@@ -947,9 +925,7 @@ CLI_CASES = [
       (*R, "--out", "missing/report.html"),
       ("does not exist",), ("create it first",)),
     K("cli-loss-raises", "a loss that raises", ("report", "usermodel:raising", *R[2:]),
-      ("raised ZeroDivisionError",), ("loss(params, *data)",),
-      xfail="problem.py: the LossError for a loss that raises names the exception but no "
-            "fix (see loss-raises)"),
+      ("raised ZeroDivisionError",), ("loss(params, *data)",)),
     K("cli-rate-negative", "--learning-rate -1", (*R, "--learning-rate", "-1"),
       ("learning_rate", "out of range"), ("must be positive",)),
     K("cli-plane-label", "--plane with an unknown label", (*R, "--plane", "w,z"),

@@ -55,7 +55,7 @@ def np_nesterov(a, b, x, lr, steps, momentum, **_):
     return np.array(out)
 
 
-def np_adam(a, b, x, lr, steps, b1=0.9, b2=0.999, eps=1e-8, **_):
+def np_adam(a, b, x, lr, steps, b1=0.9, b2=0.999, eps=1e-8, final=None, **_):
     m = np.zeros_like(x)
     v = np.zeros_like(x)
     out = [x.copy()]
@@ -67,10 +67,12 @@ def np_adam(a, b, x, lr, steps, b1=0.9, b2=0.999, eps=1e-8, **_):
         v_hat = v / (1 - b2**t)
         x = x - lr * m_hat / (np.sqrt(v_hat) + eps)
         out.append(x.copy())
+    if final is not None:
+        final["preconditioner"] = np.sqrt(v_hat) + eps
     return np.array(out)
 
 
-def np_rmsprop(a, b, x, lr, steps, decay=0.9, eps=1e-8, **_):
+def np_rmsprop(a, b, x, lr, steps, decay=0.9, eps=1e-8, final=None, **_):
     v = np.zeros_like(x)
     out = [x.copy()]
     for _ in range(steps):
@@ -78,6 +80,8 @@ def np_rmsprop(a, b, x, lr, steps, decay=0.9, eps=1e-8, **_):
         v = decay * v + (1 - decay) * g * g
         x = x - lr * g / np.sqrt(v + eps)
         out.append(x.copy())
+    if final is not None:
+        final["preconditioner"] = np.sqrt(v + eps)
     return np.array(out)
 
 
@@ -140,10 +144,18 @@ def test_batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum):
             divergence_factor=1e300,
         )
     for r in range(len(starts)):
-        ref = REFERENCE[rule](a, b, starts[r].copy(), lr, steps, **hyper)
+        final: dict = {}
+        ref = REFERENCE[rule](a, b, starts[r].copy(), lr, steps, final=final, **hyper)
         ref_loss = np.array([0.5 * x @ a @ x - b @ x for x in ref])
         np.testing.assert_allclose(runs.losses[r], ref_loss, rtol=1e-9, atol=1e-9)
         np.testing.assert_allclose(runs.final[r], ref[-1], rtol=1e-9, atol=1e-9)
+        if rule in ("adam", "rmsprop"):
+            # The diagonal the final state divides the step by (same sources as above).
+            np.testing.assert_allclose(
+                runs.preconditioner[r], final["preconditioner"], rtol=1e-9, atol=1e-12
+            )
+        else:
+            assert runs.preconditioner is None
 
 
 def test_sequential_differs_from_simultaneous_only_when_coordinates_couple(x64):

@@ -65,6 +65,56 @@ def test_momentum_sweep_uses_its_own_bound(x64):
     assert sweep.observed_bound == pytest.approx(0.94)
 
 
+def test_fixed_step_stability_ratio_is_rate_over_bound(x64):
+    prob = Problem(lambda p: 0.5 * (p[0] ** 2 + 4.0 * p[1] ** 2), jnp.zeros(2))
+    sweep = step_size_sweep(prob, np.array([[1.0, 1.0]]), learning_rates=[0.1, 0.3], steps=200)
+    # Source: the GD bound 2 / lambda_max = 2 / 4 (Polyak 1987, ch. 1, from memory).
+    np.testing.assert_allclose(sweep.table.stability_ratio, [0.2, 0.6])
+    assert sweep.sharpness_threshold is None
+    assert sweep.table.preconditioned_sharpness.isna().all()
+
+
+def test_rmsprop_settles_at_the_edge_of_stability(x64):
+    # RMSProp divides the step by P = sqrt(v + eps). On a quadratic the iterate
+    # shrinks, so v and P shrink and lr * lambda / P grows until the stiff
+    # direction is no longer contracted: x -> (1 - lr lambda / P) x stops
+    # shrinking exactly when lr lambda / P = 2, a period-2 oscillation. So the
+    # run must end with lr * lambda_max(P^-1 H) = 2 (RMSProp's threshold),
+    # i.e. stability_ratio = 1, whatever the rate. Source: Cohen, J. M. et al.
+    # (2022), Adaptive gradient methods at the edge of stability,
+    # arXiv:2207.14484 (from memory); the 2-cycle argument is common practice.
+    prob = Problem(lambda p: 0.5 * (p[0] ** 2 + 10.0 * p[1] ** 2), jnp.zeros(2))
+    rates = [1e-3, 1e-2, 1e-1]
+    sweep = step_size_sweep(
+        prob, np.array([[1.0, 1.0], [-2.0, 0.5]]), learning_rates=rates,
+        optimizer="rmsprop", steps=3000, grad_tol=0.0, loss_tol=0.0,
+    )
+    assert sweep.sharpness_threshold == 2.0
+    assert sweep.predicted_bound is None  # no fixed bound for an adaptive rule
+    np.testing.assert_allclose(sweep.table.stability_ratio, 1.0, rtol=1e-3)
+    # The sharpness itself scales as 1 / lr: P adapts to the rate.
+    np.testing.assert_allclose(
+        sweep.table.preconditioned_sharpness * np.array(rates), 2.0, rtol=1e-3
+    )
+
+
+def test_adam_sweep_reports_its_threshold(x64):
+    prob = Problem(lambda p: 0.5 * (p[0] ** 2 + 10.0 * p[1] ** 2), jnp.zeros(2))
+    sweep = step_size_sweep(
+        prob, np.array([[1.0, 1.0]]), learning_rates=[1e-2, 1e-1],
+        optimizer="adam", hyper={"b1": 0.5}, steps=500,
+    )
+    # Source: Cohen et al. (2022), arXiv:2207.14484: (2 + 2 b1) / (1 - b1) (from memory).
+    assert sweep.sharpness_threshold == pytest.approx(6.0)
+    runs = sweep.runs
+    for i, lr in enumerate(sweep.learning_rates):
+        best = int(sweep.runs.table[sweep.runs.table.learning_rate == lr].final_loss.idxmin())
+        # lambda_max(P^-1 H) of a diagonal H is max(h_i / p_i).
+        expected = np.max(np.array([1.0, 10.0]) / runs.preconditioner[best])
+        assert sweep.table.preconditioned_sharpness[i] == pytest.approx(expected, rel=1e-9)
+        assert sweep.table.stability_ratio[i] == pytest.approx(lr * expected / 6.0, rel=1e-9)
+
+
 def test_regime_majority_rules():
     assert regime_of(["diverged", "diverged", "converged"], [False] * 3) == "diverge"
     assert regime_of(["converged", "converged", "max_steps"], [True, True, False]) == "oscillate"

@@ -56,7 +56,14 @@ from .starts import (
     starts_from_spec,
 )
 from .stepsize import StepSizeSweep, regime_of, step_size_sweep
-from .surface import Profile, Surface, evaluate_points, evaluate_surface, segment_profile
+from .surface import (
+    Profile,
+    Surface,
+    evaluate_points,
+    evaluate_surface,
+    segment_profile,
+    span_ranges,
+)
 
 __all__ = [
     "ADAM",
@@ -123,6 +130,7 @@ __all__ = [
     "regime_of",
     "segment_profile",
     "sequential_bound",
+    "span_ranges",
     "stability_bound",
     "standard_errors",
     "starts_from_spec",

@@ -83,6 +83,7 @@ def _point(problem: Problem, theta: Any) -> jax.Array:
 
 def hessian_matrix(problem: Problem, theta: Any) -> np.ndarray:
     """The dense ``(n, n)`` Hessian at ``theta`` (use for small ``n`` only)."""
+    problem.check_differentiable()
     fn = problem.compiled("hessian", lambda: jax.jit(jax.hessian(problem.flat_loss)))
     h = np.asarray(fn(_point(problem, theta), problem.data), dtype=np.float64)
     return 0.5 * (h + h.T)
@@ -282,14 +283,51 @@ def adaptive_threshold(optimizer: str, hyper: Mapping[str, float] | None = None)
     return None
 
 
-def preconditioned_sharpness(problem: Problem, theta: Any, precond: Any) -> float:
-    """``lambda_max(P^-1/2 H P^-1/2)`` for a diagonal preconditioner ``P`` (flat, positive)."""
+def preconditioned_sharpness(
+    problem: Problem, theta: Any, precond: Any, *, method: str = "auto", seed: int = 0
+) -> float:
+    """``lambda_max(P^-1 H)`` for a positive diagonal preconditioner ``P`` at ``theta``.
+
+    Computed as the top eigenvalue of the symmetric ``P^-1/2 H P^-1/2`` (same
+    spectrum): exactly up to :data:`EXACT_LIMIT` parameters, else by Lanczos
+    on scaled Hessian-vector products. An adaptive rule whose state divides
+    the gradient by ``P`` is locally stable while ``lr`` times this value
+    stays below :func:`adaptive_threshold`.
+
+    Args:
+        problem: the problem.
+        theta: the point (pytree or flat vector).
+        precond: the diagonal of ``P`` (pytree or flat vector), positive, e.g.
+            ``Runs.preconditioner[i]`` of an Adam or RMSProp run.
+        method: ``"auto"``, ``"exact"`` or ``"lanczos"`` as in :func:`hessian_spectrum`.
+        seed: seed of the Lanczos start vector.
+
+    References:
+        Cohen, J. M. et al. (2022). Adaptive gradient methods at the edge of
+        stability. arXiv:2207.14484.
+    """
     p = np.asarray(problem.flatten(precond, what="preconditioner"), dtype=np.float64)
     if np.any(p <= 0) or not np.all(np.isfinite(p)):
-        raise ParameterError("the preconditioner must be positive and finite.")
-    h = hessian_matrix(problem, theta)
+        raise ParameterError(
+            "the preconditioner must be positive and finite; pass the diagonal P an "
+            "adaptive rule divides by (e.g. Runs.preconditioner of a run that did not diverge)."
+        )
+    if method not in ("auto", "exact", "lanczos"):
+        raise ParameterError(f"method must be 'auto', 'exact' or 'lanczos'; got {method!r}.")
     s = 1.0 / np.sqrt(p)
-    return float(np.linalg.eigvalsh(h * s[:, None] * s[None, :])[-1])
+    n = problem.size
+    if method == "exact" or (method == "auto" and n <= EXACT_LIMIT):
+        h = hessian_matrix(problem, theta)
+        return float(np.linalg.eigvalsh(h * s[:, None] * s[None, :])[-1])
+    point = _point(problem, theta)
+    dtype = problem.dtype
+
+    def matvec(v: np.ndarray) -> np.ndarray:
+        hv = problem.hvp(point, jnp.asarray(s * v, dtype))
+        return s * np.asarray(hv, dtype=np.float64)
+
+    vals, _ = _lanczos(matvec, n, min(n, 60), seed)
+    return float(vals.max())
 
 
 def gauss_newton_matrix(problem: Problem, theta: Any, residuals: Callable[..., Any]) -> np.ndarray:

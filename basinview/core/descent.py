@@ -39,7 +39,7 @@ from ._tuning import (
 from .errors import ParameterError
 from .optimizers import Oracle, UpdateRule, check_hyper, get_rule
 from .planes import Plane, axes_plane, random_plane
-from .problem import Problem
+from .problem import Problem, loss_runtime_errors
 from .sharding import batch_devices, replicated, shard_batch, split
 from .starts import Starts, as_starts
 
@@ -69,6 +69,10 @@ class Runs:
         stop_step: ``(R,)`` number of steps taken.
         plane: plane of the recorded projections (None for one-parameter problems).
         config: JSON-ready record of the call (for Settings).
+        preconditioner: ``(R, n)`` for adaptive rules (Adam, RMSProp), the
+            diagonal ``P`` each run's final state divides its step by (see
+            :func:`basinview.core.curvature.preconditioned_sharpness`); None
+            for other rules.
     """
 
     rule: str
@@ -85,6 +89,7 @@ class Runs:
     stop_step: np.ndarray
     plane: Plane | None
     config: dict[str, Any] = field(default_factory=dict)
+    preconditioner: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.status.shape[0])
@@ -194,7 +199,11 @@ def _projection(problem: Problem, plane: Plane | None) -> tuple[np.ndarray, np.n
         dirs[0, 0] = 1
         return origin, dirs.copy(), dirs
     if plane.size != n:
-        raise ParameterError(f"the plane has {plane.size} coordinates; the problem has {n}.")
+        raise ParameterError(
+            f"the plane has {plane.size} coordinates; the problem has {n}. A plane belongs "
+            "to the problem it was made for: build the plane from this problem (e.g. "
+            "random_plane(problem) or axes_plane(problem, label_a, label_b))."
+        )
     return plane.origin.astype(dtype), plane.projector.astype(dtype), plane.directions.astype(dtype)
 
 
@@ -223,7 +232,10 @@ def _batch_rows(problem: Problem, batch_size: int | None) -> int | None:
         return None
     leaves = jax.tree_util.tree_leaves(problem.data)
     if not leaves:
-        raise ParameterError("minibatches need data: this problem has none.")
+        raise ParameterError(
+            "minibatches need data: this problem has none. Pass the data to "
+            "Problem(loss, params, *data), or leave batch_size=None for full gradients."
+        )
     rows = {int(leaf.shape[0]) if leaf.ndim else -1 for leaf in leaves}
     if len(rows) != 1 or -1 in rows:
         raise ParameterError(
@@ -381,15 +393,15 @@ def _build_run(
             running = running & (new_status == 0)
             return (k + 1, theta, state, f, g, status, running, stop, rec)
 
-        k, theta, _state, _f, _g, status, running, stop, rec = jax.lax.while_loop(
-            cond, body, carry0
-        )
+        k, theta, state, _f, _g, status, running, stop, rec = jax.lax.while_loop(cond, body, carry0)
         stop = jnp.where(running, k, stop)
-        return theta, status, stop, rec
+        if rule.preconditioner is None:
+            return theta, status, stop, rec
+        return theta, status, stop, rec, jax.vmap(rule.preconditioner)(state, hyper)
 
     # Batch axis of each argument / output: runs are split, the rest is whole.
     in_batch = (0, 0, 0, None, None, None, None, None, None, 0, None)
-    out_batch = (0, 0, 0, 1)
+    out_batch = (0, 0, 0, 1) if rule.preconditioner is None else (0, 0, 0, 1, 0)
     return shard_batch(run, devices, in_batch, out_batch)
 
 
@@ -523,6 +535,7 @@ def descend(
         [[0.05, 'converged'], [0.11, 'diverged']]
     """
     rule = get_rule(optimizer)
+    problem.check_differentiable()
     start_set: Starts = as_starts(problem, starts)
     settings = _hyper_grid(rule, learning_rate, hyper)
     steps = _check_steps(steps)
@@ -535,8 +548,11 @@ def descend(
             raise ParameterError(f"{tname} must be a non-negative number; got {tval!r}.")
     if not (np.isfinite(divergence_factor) and divergence_factor > 0):
         raise ParameterError(f"divergence_factor must be positive; got {divergence_factor!r}.")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ParameterError(f"seed must be a non-negative integer; got {seed!r}.")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not (0 <= seed < 2**32):
+        raise ParameterError(
+            f"seed must be an integer from 0 to 2**32 - 1; got {seed!r}. Take it modulo "
+            "2**32 if it comes from elsewhere."
+        )
     if plane is None:
         plane = default_plane(problem)
     origin, proj, dirs = _projection(problem, plane)
@@ -585,42 +601,25 @@ def descend(
     seed_arr = jax.device_put(np.uint32(seed), whole)
 
     # Launch every call first (JAX dispatches asynchronously), then collect.
-    pending = []
-    for lo in range(0, n_runs, per_call):
-        hi = min(lo + per_call, n_runs)
-        pad = per_call - (hi - lo)
-        idx = np.concatenate([np.arange(lo, hi), np.full(pad, lo)])
-        active = np.arange(per_call) < (hi - lo)
-        hyper_c = {k: v[idx].astype(dtype) for k, v in hyper_rows.items()}
-        batch_args = jax.device_put(
-            (theta_all[idx], hyper_c, active, start_index[idx].astype(np.int32)), shared
+    with loss_runtime_errors(problem, "descent runs"):
+        outs = _launch_and_collect(
+            fn,
+            n_runs,
+            per_call,
+            theta_all,
+            hyper_rows,
+            start_index,
+            dtype,
+            shared,
+            (max_steps, tols, *consts, seed_arr),
+            data,
+            progress,
         )
-        pending.append(
-            (
-                hi - lo,
-                fn(
-                    batch_args[0],
-                    batch_args[1],
-                    batch_args[2],
-                    max_steps,
-                    tols,
-                    *consts,
-                    seed_arr,
-                    batch_args[3],
-                    data,
-                ),
-            )
-        )
-    outs: list[Any] = []
-    show = progress if progress is not None else len(pending) > 4
-    for m, result in progress_bar(pending, total=len(pending), show=show, desc="descent"):
-        theta, status, stop, rec = jax.tree_util.tree_map(np.asarray, result)
-        outs.append((theta[:m], status[:m], stop[:m], {k: v[:, :m] for k, v in rec.items()}))
-
     final = np.concatenate([o[0] for o in outs])
     status_code = np.concatenate([o[1] for o in outs])
     stop = np.concatenate([o[2] for o in outs]).astype(np.int64)
     rec = {k: np.concatenate([o[3][k] for o in outs], axis=1).T for k in outs[0][3]}
+    precond = np.concatenate([o[4] for o in outs]) if len(outs[0]) > 4 else None
     t1 = steps + 1
     config = {
         "optimizer": rule.name,
@@ -648,4 +647,64 @@ def descend(
         stop_step=stop,
         plane=plane,
         config=config,
+        preconditioner=precond,
     )
+
+
+def _launch_and_collect(
+    fn: Any,
+    n_runs: int,
+    per_call: int,
+    theta_all: np.ndarray,
+    hyper_rows: dict[str, np.ndarray],
+    start_index: np.ndarray,
+    dtype: Any,
+    shared: Any,
+    fixed: tuple[Any, ...],
+    data: Any,
+    progress: bool | None,
+) -> list[tuple[Any, ...]]:
+    """Dispatch every call of a sweep, then read the results back (per call, trimmed)."""
+    max_steps, tols, origin, proj, dirs, seed_arr = fixed
+    pending = []
+    for lo in range(0, n_runs, per_call):
+        hi = min(lo + per_call, n_runs)
+        pad = per_call - (hi - lo)
+        idx = np.concatenate([np.arange(lo, hi), np.full(pad, lo)])
+        active = np.arange(per_call) < (hi - lo)
+        hyper_c = {k: v[idx].astype(dtype) for k, v in hyper_rows.items()}
+        batch_args = jax.device_put(
+            (theta_all[idx], hyper_c, active, start_index[idx].astype(np.int32)), shared
+        )
+        pending.append(
+            (
+                hi - lo,
+                fn(
+                    batch_args[0],
+                    batch_args[1],
+                    batch_args[2],
+                    max_steps,
+                    tols,
+                    origin,
+                    proj,
+                    dirs,
+                    seed_arr,
+                    batch_args[3],
+                    data,
+                ),
+            )
+        )
+    outs: list[tuple[Any, ...]] = []
+    show = progress if progress is not None else len(pending) > 4
+    for m, result in progress_bar(pending, total=len(pending), show=show, desc="descent"):
+        theta, status, stop, rec, *extra = jax.tree_util.tree_map(np.asarray, result)
+        outs.append(
+            (
+                theta[:m],
+                status[:m],
+                stop[:m],
+                {k: v[:, :m] for k, v in rec.items()},
+                *(x[:m] for x in extra),
+            )
+        )
+    return outs

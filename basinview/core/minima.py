@@ -28,7 +28,7 @@ from .errors import ParameterError
 from .planes import Plane
 from .problem import Problem
 from .starts import grid_starts
-from .surface import _ranges, _resolution
+from .surface import _resolution, span_ranges
 
 __all__ = [
     "DIVERGED_LABEL",
@@ -403,7 +403,7 @@ def basin_map(
         raise ParameterError("a basin map uses one learning rate; call basin_map once per rate.")
     if any(np.ndim(v) != 0 for v in (hyper or {}).values()):
         raise ParameterError("a basin map uses one value per hyper-parameter.")
-    (a0, a1), (b0, b1) = _ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span)
     ra, rb = _resolution(resolution)
     starts = grid_starts(plane, span=((a0, a1), (b0, b1)), resolution=(ra, rb))
     show = progress if progress is not None else ra * rb > 4096

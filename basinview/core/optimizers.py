@@ -81,6 +81,9 @@ class UpdateRule(NamedTuple):
         bounds: allowed interval of each hyper-parameter.
         init: ``init(theta, hyper) -> state``.
         step: ``step(theta, grad, state, hyper, oracle) -> (theta, state)``.
+        preconditioner: for adaptive rules, ``preconditioner(state, hyper) ->
+            p``, the positive diagonal ``P`` by which the current state divides
+            the (averaged) gradient; None for other rules.
     """
 
     name: str
@@ -90,6 +93,7 @@ class UpdateRule(NamedTuple):
     bounds: Mapping[str, Bound]
     init: Callable[[jax.Array, Hyper], Any]
     step: Callable[[jax.Array, jax.Array, Any, Hyper, Oracle], tuple[jax.Array, Any]]
+    preconditioner: Callable[[Any, Hyper], jax.Array] | None = None
 
 
 def _no_state(theta: jax.Array, hyper: Hyper) -> tuple[()]:
@@ -268,11 +272,25 @@ def optax_rule(
     )
 
 
+def _adam_preconditioner(state: Any, hyper: Hyper) -> jax.Array:
+    # optax.adam divides the bias-corrected first moment by sqrt(nu_hat) + eps.
+    inner = state.inner_state[0]
+    count = jnp.maximum(inner.count, 1).astype(inner.nu.dtype)
+    nu_hat = inner.nu / (1.0 - hyper["b2"] ** count)
+    return jnp.sqrt(nu_hat) + hyper["eps"]
+
+
+def _rmsprop_preconditioner(state: Any, hyper: Hyper) -> jax.Array:
+    # optax.rmsprop (no bias correction, eps inside the root) divides by sqrt(nu + eps).
+    return jnp.sqrt(state.inner_state[0].nu + hyper["eps"])
+
+
 ADAM = optax_rule(optax.adam, name="adam")._replace(
     title="Adam",
     hyper=("learning_rate", "b1", "b2", "eps"),
     defaults={"b1": 0.9, "b2": 0.999, "eps": 1e-8},
     bounds={"learning_rate": POSITIVE, "b1": UNIT, "b2": UNIT, "eps": POSITIVE},
+    preconditioner=_adam_preconditioner,
 )
 """Adam (Kingma & Ba 2015) as implemented by ``optax.adam``."""
 
@@ -281,6 +299,7 @@ RMSPROP = optax_rule(optax.rmsprop, name="rmsprop")._replace(
     hyper=("learning_rate", "decay", "eps"),
     defaults={"decay": 0.9, "eps": 1e-8},
     bounds={"learning_rate": POSITIVE, "decay": UNIT, "eps": POSITIVE},
+    preconditioner=_rmsprop_preconditioner,
 )
 """RMSProp (Tieleman & Hinton 2012) as implemented by ``optax.rmsprop``:
 ``v = decay v + (1 - decay) g^2``, ``x -= lr g / sqrt(v + eps)``."""

@@ -9,10 +9,12 @@ readable label for every coordinate.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import hashlib
 import inspect
-from collections.abc import Callable, Hashable
+import re
+from collections.abc import Callable, Hashable, Iterator
 from typing import Any
 
 import jax
@@ -22,7 +24,7 @@ import numpy as np
 from .errors import LossError, ParameterError
 from .pytrees import Flattener, make_flattener
 
-__all__ = ["REDUCTIONS", "Problem", "accumulate_rows", "loss_name"]
+__all__ = ["REDUCTIONS", "Problem", "accumulate_rows", "loss_name", "loss_runtime_errors"]
 
 REDUCTIONS = ("mean", "sum")
 """How a loss combines its rows: ``"mean"`` (e.g. ``jnp.mean``) or ``"sum"``."""
@@ -50,6 +52,40 @@ def loss_name(loss: Callable[..., Any]) -> str:
     module = getattr(target, "__module__", None) or "?"
     qual = getattr(target, "__qualname__", None) or type(target).__qualname__
     return f"{module}.{qual}"
+
+
+_RAISED_HELP = "Call loss(params, *data) yourself on the same inputs to see the full traceback."
+
+_ERROR_LINE = re.compile(r"^\s*([A-Za-z_][\w.]*(?:Error|Exception)): (.+)$")
+
+
+def _runtime_reason(exc: BaseException) -> str:
+    """The user's error message out of a JAX run-time error (last ``XxxError: msg`` line)."""
+    lines = str(exc).splitlines()
+    found = [m for m in map(_ERROR_LINE.match, lines) if m]
+    if found:
+        return f"{found[-1].group(1).lstrip('_')}: {found[-1].group(2)}"
+    return lines[0] if lines else type(exc).__name__
+
+
+@contextlib.contextmanager
+def loss_runtime_errors(problem: Problem, what: str) -> Iterator[None]:
+    """Turn an error raised while a compiled loss runs into a :class:`LossError`.
+
+    A loss may check its inputs at run time (``equinox.error_if``, a host
+    callback that raises); JAX then stops the whole batch with a
+    ``JaxRuntimeError`` whose message buries the user's own text.
+    """
+    try:
+        yield
+    except jax.errors.JaxRuntimeError as exc:
+        raise LossError(
+            f"the loss {problem.name} raised an error while computing {what}: "
+            f"{_runtime_reason(exc)}. An error stops the whole batch; to let only the "
+            "affected points stop, return NaN there instead, e.g. "
+            "jnp.where(bad, jnp.nan, value), and basinview marks them (gaps in a "
+            "surface, 'diverged' runs)."
+        ) from exc
 
 
 def _as_data(data: tuple[Any, ...]) -> tuple[Any, ...]:
@@ -313,6 +349,37 @@ class Problem:
             self._cache[key] = build()
         return self._cache[key]
 
+    def check_differentiable(self) -> None:
+        """Raise :class:`LossError` unless JAX can differentiate the loss.
+
+        Traces the gradient once (no compilation) and remembers the answer.
+        A loss can be evaluated but not differentiated when it calls NumPy
+        through ``jax.pure_callback`` or another primitive without a
+        derivative rule; surfaces still work, descent and curvature do not.
+        """
+
+        def check() -> str:
+            try:
+                jax.eval_shape(jax.grad(self.flat_loss), jnp.asarray(self._theta0), self._data)
+            except Exception as exc:  # any failure to trace the derivative
+                first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+                return (
+                    f"JAX cannot differentiate the loss {self._name}: {first}. Write the "
+                    "loss with jax.numpy operations, or give the non-JAX part a derivative "
+                    "rule with jax.custom_jvp (or jax.custom_vjp). Surfaces still work; "
+                    "descent and curvature need gradients."
+                )
+            return ""
+
+        message = self.cached(("differentiable",), check)
+        if message:
+            raise LossError(message)
+
+    def _differentiable(self, fn: Callable[..., Any]) -> Callable[..., Any]:
+        """``jax.jit(fn)`` after checking that the loss has a gradient (built once)."""
+        self.check_differentiable()
+        return jax.jit(fn)
+
     def _vec(self, theta: Any) -> jax.Array:
         theta = jnp.asarray(theta, dtype=self.dtype)
         if theta.shape != (self.size,):
@@ -329,12 +396,14 @@ class Problem:
 
     def grad(self, theta: Any) -> jax.Array:
         """Gradient of the loss at ``theta`` (flat)."""
-        fn = self.compiled("grad", lambda: jax.jit(jax.grad(self.flat_loss)))
+        fn = self.compiled("grad", lambda: self._differentiable(jax.grad(self.flat_loss)))
         return fn(self._vec(theta), self._data)
 
     def value_and_grad(self, theta: Any) -> tuple[jax.Array, jax.Array]:
         """Loss and gradient at ``theta`` in one pass."""
-        fn = self.compiled("value_and_grad", lambda: jax.jit(jax.value_and_grad(self.flat_loss)))
+        fn = self.compiled(
+            "value_and_grad", lambda: self._differentiable(jax.value_and_grad(self.flat_loss))
+        )
         return fn(self._vec(theta), self._data)
 
     def hvp(self, theta: Any, v: Any) -> jax.Array:
@@ -354,7 +423,7 @@ class Problem:
             def hvp(theta: jax.Array, v: jax.Array, data: tuple[Any, ...]) -> jax.Array:
                 return jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
 
-            return jax.jit(hvp)
+            return self._differentiable(hvp)
 
         return self.compiled("hvp", build)(self._vec(theta), self._vec(v), self._data)
 
@@ -396,12 +465,13 @@ class Problem:
                 ) from exc
             raise LossError(
                 f"the loss {self._name} raised TypeError on the given parameters and data: "
-                f"{text.splitlines()[0] if text else exc!r}"
+                f"{text.splitlines()[0] if text else exc!r}. {_RAISED_HELP}"
             ) from exc
         except Exception as exc:
             raise LossError(
                 f"the loss {self._name} raised {type(exc).__name__} on the given "
-                f"parameters and data: {str(exc).splitlines()[0] if str(exc) else exc!r}"
+                f"parameters and data: {str(exc).splitlines()[0] if str(exc) else exc!r}. "
+                + _RAISED_HELP
             ) from exc
         if not hasattr(out, "shape") or out.shape != ():
             shape = getattr(out, "shape", type(out).__name__)
@@ -412,7 +482,9 @@ class Problem:
         if not jnp.issubdtype(out.dtype, jnp.floating):
             raise LossError(
                 f"the loss must return a real floating-point scalar; {self._name} "
-                f"returned dtype {out.dtype}."
+                f"returned dtype {out.dtype}. Convert the result, e.g. "
+                "return jnp.asarray(value, dtype=float), and avoid rounding or casting "
+                "to integers inside the loss (it has no useful gradient)."
             )
         if self._chunk_rows is not None:
             self._check_row_contract(out.dtype)

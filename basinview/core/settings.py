@@ -30,7 +30,7 @@ from .planes import Plane, plane_from_spec
 from .problem import Problem
 from .settings_json import MAX_SETTINGS_BYTES, SCHEMA_VERSION, fields_from_raw, parse
 from .starts import Starts, starts_from_spec
-from .surface import Surface, _ranges, _resolution, evaluate_surface
+from .surface import Surface, _resolution, evaluate_surface, span_ranges
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -239,7 +239,7 @@ def record_settings(
         n_params=problem.size,
         dtype=str(problem.dtype),
         plane=json.loads(json.dumps(plane.spec)),
-        span=_ranges(span),
+        span=span_ranges(span),
         resolution=_resolution(resolution),
         starts=json.loads(json.dumps(starts.spec)),
         optimizer=cfg["optimizer"],

@@ -13,7 +13,7 @@ from typing import Any
 
 from .descent import MAX_STEPS
 from .errors import SettingsError
-from .surface import _ranges, _resolution
+from .surface import _resolution, span_ranges
 
 __all__ = [
     "MAX_DEPTH",
@@ -183,7 +183,7 @@ def fields_from_raw(raw: Any, names: set[str], required: set[str]) -> dict[str, 
         raise _bad(f"settings JSON lacks the fields {missing}; was it truncated or edited?")
     span_raw = _expect(raw, "span", (list,), "[[a_min, a_max], [b_min, b_max]]")
     try:
-        span = _ranges(span_raw)
+        span = span_ranges(span_raw)
     except Exception as exc:
         raise _bad(f"settings field 'span' is invalid: {exc}") from None
     res_raw = _expect(raw, "resolution", (list,), "[ra, rb]")

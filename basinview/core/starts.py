@@ -22,7 +22,7 @@ import numpy as np
 from .errors import BasinviewError, ParameterError
 from .planes import Plane, _check_seed
 from .problem import Problem, loss_name
-from .surface import _ranges, _resolution
+from .surface import _resolution, span_ranges
 
 __all__ = [
     "MAX_STARTS",
@@ -98,7 +98,7 @@ def grid_starts(plane: Plane, *, span: Any = 1.0, resolution: Any = 21) -> Start
 
     The grid coordinates are kept in ``spec`` so basin maps can be drawn.
     """
-    (a0, a1), (b0, b1) = _ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span)
     ra, rb = _resolution(resolution)
     if ra * rb > MAX_STARTS:
         raise ParameterError(
@@ -198,7 +198,9 @@ def combine_starts(*parts: Starts) -> Starts:
         raise ParameterError("combine_starts needs at least one set of starts.")
     sizes = {p.points.shape[1] for p in parts}
     if len(sizes) != 1:
-        raise ParameterError(f"cannot combine starts of different parameter counts {sorted(sizes)}.")
+        raise ParameterError(
+            f"cannot combine starts of different parameter counts {sorted(sizes)}."
+        )
     if len(parts) == 1:
         return parts[0]
     spec = {"kind": "combined", "parts": [p.spec for p in parts]}
@@ -281,7 +283,10 @@ def _starts_from_spec(
         if not isinstance(parts, list) or not parts:
             raise ParameterError("combined starts need a non-empty list of parts.")
         return combine_starts(
-            *(starts_from_spec(problem, part, plane=plane, initializers=initializers) for part in parts)
+            *(
+                starts_from_spec(problem, part, plane=plane, initializers=initializers)
+                for part in parts
+            )
         )
     raise ParameterError(
         f"unknown starts kind {kind!r}; expected 'explicit', 'random', 'grid', 'initializer' "

@@ -15,6 +15,15 @@ Next to it stand the bound predicted from the Hessian at a point
 which no run diverged in the sweep. On a quadratic the two agree; on other
 losses the prediction is local: exceeding it at a minimum means the minimum
 is not a stable fixed point, not that runs must blow up.
+
+Adam and RMSProp have no fixed bound: they divide the step by a diagonal
+``P`` that the run itself adapts. For them each rate's row carries the
+preconditioned sharpness ``lambda_max(P^-1 H)`` at the end of that rate's
+best run, with ``P`` from the run's final state, and the column
+``stability_ratio`` = ``lr * lambda_max(P^-1 H) / threshold``
+(:func:`basinview.core.curvature.adaptive_threshold`): below 1 the final
+state is locally stable, near 1 the run sits at the edge of stability. For
+the fixed-step rules ``stability_ratio`` is ``lr / predicted_bound``.
 """
 
 from __future__ import annotations
@@ -26,7 +35,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .curvature import Spectrum, hessian_spectrum, stability_bound
+from .curvature import (
+    Spectrum,
+    adaptive_threshold,
+    hessian_spectrum,
+    preconditioned_sharpness,
+    stability_bound,
+)
 from .descent import Runs, descend
 from .errors import ParameterError
 from .optimizers import get_rule
@@ -53,6 +68,8 @@ class StepSizeSweep:
         point: the flat point where the curvature was measured.
         runs: all runs of the sweep.
         optimizer: rule name.
+        sharpness_threshold: for adaptive rules, the threshold of ``lr *
+            lambda_max(P^-1 H)`` (see module docstring); None otherwise.
     """
 
     learning_rates: np.ndarray
@@ -64,6 +81,7 @@ class StepSizeSweep:
     point: np.ndarray
     runs: Runs
     optimizer: str
+    sharpness_threshold: float | None = None
 
     def to_frame(self) -> pd.DataFrame:
         return self.table
@@ -171,8 +189,17 @@ def step_size_sweep(
     else:
         point = problem.flatten(at, what="curvature point")
     spectrum = hessian_spectrum(problem, point, k=1)
-    settings = {k: float(v) for k, v in (hyper or {}).items()}
+    settings = {**rule.defaults, **{k: float(v) for k, v in (hyper or {}).items()}}
     predicted = stability_bound(rule.name, spectrum.lambda_max, settings)
+    threshold = None
+    if runs.preconditioner is not None:
+        threshold = adaptive_threshold(rule.name, settings)
+        sharp = _final_sharpness(problem, runs, table, rates)
+        summary["preconditioned_sharpness"] = sharp
+        summary["stability_ratio"] = rates * sharp / threshold if threshold is not None else np.nan
+    else:
+        summary["preconditioned_sharpness"] = np.nan
+        summary["stability_ratio"] = rates / predicted if predicted is not None else np.nan
     stable = summary[summary.diverged == 0].learning_rate
     observed = float(stable.max()) if len(stable) else None
     return StepSizeSweep(
@@ -185,4 +212,25 @@ def step_size_sweep(
         point=np.asarray(point),
         runs=runs,
         optimizer=rule.name,
+        sharpness_threshold=threshold,
     )
+
+
+def _final_sharpness(
+    problem: Problem, runs: Runs, table: pd.DataFrame, rates: np.ndarray
+) -> np.ndarray:
+    """``lambda_max(P^-1 H)`` at the end of each rate's lowest-loss run that did not diverge."""
+    assert runs.preconditioner is not None
+    out = np.full(len(rates), np.nan)
+    for i, lr in enumerate(rates):
+        sub = table[
+            np.isclose(table.learning_rate, lr, rtol=1e-12, atol=0) & (table.status != "diverged")
+        ]
+        loss = sub.final_loss.to_numpy(dtype=float)
+        if not len(sub) or not np.isfinite(loss).any():
+            continue
+        run = int(sub.index[int(np.nanargmin(loss))])
+        precond = runs.preconditioner[run]
+        if np.all(np.isfinite(precond)) and np.all(precond > 0):
+            out[i] = preconditioned_sharpness(problem, runs.final[run], precond)
+    return out

@@ -27,7 +27,7 @@ from ._tuning import (
 )
 from .errors import ParameterError
 from .planes import Plane
-from .problem import Problem
+from .problem import Problem, loss_runtime_errors
 from .sharding import batch_devices, replicated, shard_batch, split
 
 __all__ = [
@@ -37,6 +37,7 @@ __all__ = [
     "evaluate_points",
     "evaluate_surface",
     "segment_profile",
+    "span_ranges",
 ]
 
 MAX_RESOLUTION = 4001
@@ -111,24 +112,42 @@ class Profile:
         return pd.DataFrame({"t": self.t, "loss": self.loss})
 
 
-def _ranges(span: Any) -> tuple[tuple[float, float], tuple[float, float]]:
-    arr = np.asarray(span, dtype=float)
+_SPAN_FORMS = (
+    "span must be a number s (grid [-s, s]^2), a pair (sa, sb), or ((a_min, a_max), (b_min, b_max))"
+)
+
+
+def span_ranges(span: Any) -> tuple[tuple[float, float], tuple[float, float]]:
+    """The ``((a_min, a_max), (b_min, b_max))`` ranges a span stands for, checked.
+
+    >>> span_ranges(2.0)
+    ((-2.0, 2.0), (-2.0, 2.0))
+    >>> span_ranges((1.0, 3.0))
+    ((-1.0, 1.0), (-3.0, 3.0))
+    >>> span_ranges(((0.0, 1.0), (-5.0, 5.0)))
+    ((0.0, 1.0), (-5.0, 5.0))
+    """
+    try:
+        arr = np.asarray(span, dtype=float)
+    except (TypeError, ValueError) as exc:
+        raise ParameterError(f"{_SPAN_FORMS}; got {span!r}.") from exc
     if arr.shape == ():
         arr = np.array([arr, arr])
     if arr.shape == (2,):
         arr = np.array([[-arr[0], arr[0]], [-arr[1], arr[1]]])
     if arr.shape != (2, 2):
-        raise ParameterError(
-            "span must be a number s (grid [-s, s]^2), a pair (sa, sb), or "
-            f"((a_min, a_max), (b_min, b_max)); got shape {arr.shape}."
-        )
+        raise ParameterError(f"{_SPAN_FORMS}; got shape {arr.shape}.")
     if not np.all(np.isfinite(arr)) or np.any(arr[:, 1] <= arr[:, 0]):
         raise ParameterError(
             f"span must be finite and each range must have min < max; got {arr.tolist()}. "
             "A half-width s must be positive."
         )
     if np.any(np.abs(arr) > 1e12):
-        raise ParameterError(f"span {arr.tolist()} is absurdly large (beyond 1e12).")
+        raise ParameterError(
+            f"span {arr.tolist()} is absurdly large (beyond 1e12): no float grid can "
+            "resolve the loss there. Choose a span below 1e12, around the scale of the "
+            "parameters (e.g. a few times their largest magnitude)."
+        )
     return (float(arr[0, 0]), float(arr[0, 1])), (float(arr[1, 0]), float(arr[1, 1]))
 
 
@@ -260,22 +279,23 @@ def evaluate_points(
         raise ParameterError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
     devs = batch_devices(devices)
     grid = _Grid(problem, devs, [np.asarray(x, dtype=dtype) for x in (origin, d1, d2)])
-    if chunk_size is not None:
-        chunk = int(chunk_size)
-    elif total * evaluation_bytes(problem) >= TUNE_WORK_BYTES:
-        chunk = _tuned_chunk(problem, grid, ab)
-    else:
-        chunk = chunk_size_for(problem)
-    n_dev = len(devs)
-    block = _block_size(problem, chunk, -(-total // n_dev))
-    step = block * n_dev
-    # Launch every block first (JAX dispatches asynchronously), then collect.
-    pending = [grid.launch(chunk, block, _padded(ab, lo, step)) for lo in range(0, total, step)]
-    out = np.empty(len(pending) * step, dtype=dtype)
-    for i, result in enumerate(
-        progress_bar(pending, total=len(pending), show=progress, desc="surface")
-    ):
-        out[i * step : (i + 1) * step] = np.asarray(result)
+    with loss_runtime_errors(problem, "the surface"):
+        if chunk_size is not None:
+            chunk = int(chunk_size)
+        elif total * evaluation_bytes(problem) >= TUNE_WORK_BYTES:
+            chunk = _tuned_chunk(problem, grid, ab)
+        else:
+            chunk = chunk_size_for(problem)
+        n_dev = len(devs)
+        block = _block_size(problem, chunk, -(-total // n_dev))
+        step = block * n_dev
+        # Launch every block first (JAX dispatches asynchronously), then collect.
+        pending = [grid.launch(chunk, block, _padded(ab, lo, step)) for lo in range(0, total, step)]
+        out = np.empty(len(pending) * step, dtype=dtype)
+        for i, result in enumerate(
+            progress_bar(pending, total=len(pending), show=progress, desc="surface")
+        ):
+            out[i * step : (i + 1) * step] = np.asarray(result)
     out = out[:total]
     out[~np.isfinite(out)] = np.nan
     return out
@@ -321,7 +341,7 @@ def evaluate_surface(
             f"the plane has {plane.size} coordinates but the problem has {problem.size}; "
             "build the plane from this problem."
         )
-    (a0, a1), (b0, b1) = _ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span)
     ra, rb = _resolution(resolution)
     a = np.linspace(a0, a1, ra)
     b = np.linspace(b0, b1, rb)

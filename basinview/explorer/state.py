@@ -183,9 +183,9 @@ def _starts_fields(spec: dict[str, Any]) -> dict[str, Any]:
 
 def as_span(span: Any) -> tuple[tuple[float, float], tuple[float, float]]:
     """Normalise a span to ``((a0, a1), (b0, b1))`` (same rules as evaluate_surface)."""
-    from ..core.surface import _ranges
+    from ..core.surface import span_ranges
 
-    return _ranges(span)
+    return span_ranges(span)
 
 
 def default_span(problem: Any, plane_kind: str) -> tuple[tuple[float, float], tuple[float, float]]:
