@@ -527,6 +527,14 @@ def test_step_size_figure_marks_the_predicted_bound(bowl_sweep):
     assert uids(fig) == uids(F.step_size_figure(bowl_sweep, y="steps"))
     with pytest.raises(core.BasinviewError, match="final_loss"):
         F.step_size_figure(bowl_sweep, y="loss")
+    # Hover: each rate's stability ratio = rate / (2 / lambda_max) = rate / 1 here.
+    shown = {}
+    for t in fig.data:
+        if t.uid.startswith("sweep-regime-"):
+            shown.update(zip(np.asarray(t.x, dtype=float), np.asarray(t.customdata)[:, 1]))
+            assert "stability ratio %{customdata[1]}" in t.hovertemplate
+    for rate, text in shown.items():
+        assert float(text) == pytest.approx(rate, rel=1e-3)
 
 
 def test_auto_colours_fall_back_when_no_run_reached_a_point(bowl_view):

@@ -160,7 +160,9 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     with each rate's regime as a coloured band. Bottom panel: the share of
     runs that converged, spent the budget, or diverged. The predicted
     stability bound is a dashed vertical line; the observed one (largest
-    rate at which every run converged) is a dotted line.
+    rate at which every run converged) is a dotted line. Hovering a rate
+    shows its stability ratio: the rate over the predicted bound, or for
+    Adam and RMSProp ``lr * lambda_max(P^-1 H)`` over their threshold.
 
     Args:
         sweep: a :class:`~basinview.core.stepsize.StepSizeSweep`.
@@ -179,6 +181,14 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     column = "median_final_loss" if y == "final_loss" else "median_steps_to_tol"
     values = table[column].to_numpy(dtype=np.float64, na_value=np.nan)
     regimes = table["regime"].astype(str).to_list()
+    ratio = (
+        table["stability_ratio"].to_numpy(dtype=np.float64, na_value=np.nan)
+        if "stability_ratio" in table
+        else np.full(len(table), np.nan)
+    )
+    ratio_text = np.array(
+        [f"{r:.3g}" if np.isfinite(r) else "n/a" for r in ratio], dtype=object
+    )
     fig = _two_rows()
     edges = _edges(rates)
     finite = values[np.isfinite(values)]
@@ -202,10 +212,15 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
                 "type": "scatter",
                 "x": np.concatenate([rates[shown], rates[lost]]),
                 "y": np.concatenate([values[shown], np.full(lost.sum(), top)]),
-                "customdata": np.concatenate(
+                "customdata": np.column_stack(
                     [
-                        values[shown].astype(object),
-                        np.full(lost.sum(), "none (not finite)", dtype=object),
+                        np.concatenate(
+                            [
+                                values[shown].astype(object),
+                                np.full(lost.sum(), "none (not finite)", dtype=object),
+                            ]
+                        ),
+                        np.concatenate([ratio_text[shown], ratio_text[lost]]),
                     ]
                 ),
                 "mode": "markers",
@@ -220,7 +235,8 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
                     "line": {"color": colour if lost.any() else "white", "width": 1.5},
                 },
                 "hovertemplate": (
-                    "learning rate %{x:.4g}<br>" + column.replace("_", " ") + " %{customdata}"
+                    "learning rate %{x:.4g}<br>" + column.replace("_", " ") + " %{customdata[0]}"
+                    "<br>stability ratio %{customdata[1]}"
                     f"<extra>{regime}</extra>"
                 ),
                 "uid": uid("sweep", "regime", regime),
