@@ -40,7 +40,6 @@ from pathlib import Path
 from typing import Any
 
 import equinox as eqx
-import jax
 import jax.numpy as jnp
 import numpy as np
 import pandas as pd
@@ -74,7 +73,7 @@ from basinview.core import (
     through_plane,
 )
 
-from .conftest import himmelblau, quadratic
+from .conftest import callback_loss, himmelblau, quadratic
 from .integrity import assert_same, folder_state, snapshot
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -113,16 +112,6 @@ def numpy_loss(p):
 
 def integer_loss(p):
     return jnp.round(p["x"] ** 2).astype(jnp.int32)
-
-
-def callback_loss(p):
-    value = jax.pure_callback(
-        lambda x: np.asarray(x**2, np.float32),
-        jax.ShapeDtypeStruct((), jnp.float32),
-        p["x"],
-        vmap_method="sequential",
-    )
-    return value + p["y"] ** 2
 
 
 def linear_loss(p, x, y):

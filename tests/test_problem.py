@@ -212,16 +212,9 @@ def test_empty_and_non_array_parameters_rejected():
 def test_a_loss_without_gradient_still_gives_a_surface_but_no_descent():
     from basinview.core import axes_plane, descend, evaluate_surface, hessian_spectrum
 
-    def loss(p):  # NumPy inside a host callback: JAX can evaluate it, not differentiate it
-        value = jax.pure_callback(
-            lambda x: np.asarray(x**2, np.float32),
-            jax.ShapeDtypeStruct((), jnp.float32),
-            p["x"],
-            vmap_method="sequential",
-        )
-        return value + p["y"] ** 2
+    from .conftest import callback_loss
 
-    prob = Problem(loss, {"x": 1.0, "y": 2.0})
+    prob = Problem(callback_loss, {"x": 1.0, "y": 2.0})
     surf = evaluate_surface(prob, axes_plane(prob, "x", "y"), span=1.0, resolution=3)
     # x^2 + y^2 on the grid (1 + {-1, 0, 1}) x (2 + {-1, 0, 1}), computed by hand.
     expected = np.add.outer((1.0 + np.array([-1, 0, 1])) ** 2, (2.0 + np.array([-1, 0, 1])) ** 2)
