@@ -143,35 +143,13 @@ def _sync_rows(d: dict[str, Any], repeats: int) -> dict[str, list[float]]:
 
 
 def _explorer_row(d: dict[str, Any], repeats: int) -> list[float]:
-    import basinview
+    from .interaction import Change, quickstart_explorer, time_changes
 
-    sc = d["scenario"]
     resolution, n_runs, steps = d["sizes"]
-    ex = basinview.Explorer(
-        sc.problem,
-        x="x",
-        y="y",
-        origin=np.array([5.0, 0.0]),
-        span=sc.span,
-        resolution=resolution,
-        learning_rate=0.2,
-        steps=steps,
-        n_starts=n_runs,
-        start_scale=4.0,
-    )
-    values = [0.15, 0.25, 0.3, 0.12, 0.2, 0.35]
-    for v in values:  # warm-up: every value once (compiles, caches)
-        ex.controls.learning_rate.value = v
-    times = []
-    for _ in range(max(1, repeats // len(values))):
-        for v in values:
-            gc.collect()
-            start = time.perf_counter()
-            ex.controls.learning_rate.value = v
-            times.append(time.perf_counter() - start)
-    if ex.last_error:
-        raise RuntimeError(ex.last_error)
-    return times
+    ex = quickstart_explorer(resolution=resolution, steps=steps, n_starts=n_runs)
+    changes = [Change("learning rate", v) for v in (0.15, 0.25, 0.3, 0.12, 0.2, 0.35)]
+    time_changes(ex, changes)  # warm-up: every value once (compiles, caches)
+    return time_changes(ex, changes * max(1, repeats // len(changes)))
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -5,8 +5,9 @@ Usage (from the repository root)::
     python -m benchmarks.run             # full run, writes benchmarks/results.json
     python -m benchmarks.run --quick     # tiny sizes: checks it runs and agrees
     python -m benchmarks.run --only W1,W3 --repeats 3
+    python -m benchmarks.run --only W5 --merge   # rerun W5 into results.json
 
-Every workload is timed in this one process for basinview (on all CPU
+W1-W4 are timed in this one process for basinview (on all CPU
 devices, and on one), for baseline (a), a Python loop calling a jitted JAX
 function per grid point or step, and for baseline (b), the same loop in
 NumPy with hand-derived gradients (see ``benchmarks/baselines.py``). Each
@@ -15,9 +16,14 @@ contenders run in interleaved rounds and the median of the rounds is kept.
 Results of all contenders are compared numerically. W6 measures peak memory
 in fresh processes (``benchmarks/memory.py``).
 
-Workloads are registered in ``WORKLOADS``; the Explorer interaction
-benchmark (W5) is not part of this harness yet: it will be one more function
-``w5(ctx) -> dict`` registered there once the Explorer exists.
+W5 drives the quickstart Explorer from Python: the latency of a
+learning-rate change and the compilations caused by 20 changes of rate,
+starts and momentum (``benchmarks/interaction.py``); it has no baseline.
+
+Workloads are registered in ``WORKLOADS`` (functions ``ctx -> dict``).
+``--merge`` runs the workloads named by ``--only`` and writes them into the
+existing results file, keeping the other workloads' numbers and recording
+the machine and date of the merged run beside them.
 """
 
 from __future__ import annotations
@@ -456,6 +462,14 @@ def w4(ctx: Context) -> dict[str, Any]:
     return rec
 
 
+def w5(ctx: Context) -> dict[str, Any]:
+    """W5: the quickstart Explorer, driven from Python: latency and compilations."""
+    from .interaction import interaction_record
+
+    s = ctx.sizes
+    return interaction_record(s.w5_resolution, s.w5_steps, s.w5_rounds)
+
+
 def _memory_case(args: list[str]) -> dict[str, Any]:
     cmd = [sys.executable, "-m", "benchmarks.memory", *args]
     done = subprocess.run(cmd, cwd=ROOT, capture_output=True, text=True, check=False)
@@ -506,6 +520,7 @@ WORKLOADS: dict[str, Callable[[Context], dict[str, Any]]] = {
     "W2": w2,
     "W3": w3,
     "W4": w4,
+    "W5": w5,
     "W6": w6,
 }
 
@@ -571,6 +586,8 @@ def report(results: dict[str, Any]) -> str:
     widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
     lines = ["  ".join(cell.ljust(w) for cell, w in zip(r, widths)) for r in rows]
     lines.insert(1, "  ".join("-" * w for w in widths))
+    if len(rows) == 1:  # no timed-against-baseline workload in this run
+        lines = []
     work = results["workloads"]
     if "matmul" in work:
         lines.append(f"matmul peak in this run: {work['matmul']['peak_gflops']:.1f} GFLOP/s")
@@ -582,6 +599,17 @@ def report(results: dict[str, Any]) -> str:
                 f"W1 {form}: {rec['gflops']:.1f} GFLOP/s"
                 + (f" = {pct:.0f}% of the matmul peak" if pct is not None else "")
             )
+    if "W5" in work:
+        rec = work["W5"]
+        lr, mixed = rec["learning_rate_change"], rec["mixed_changes"]
+        lines.append(
+            f"W5 learning-rate change: median {lr['full']['median_ms']:.1f} ms "
+            f"(min {lr['full']['min_ms']:.1f}, max {lr['full']['max_ms']:.1f}) over "
+            f"{lr['full']['changes']} changes, {lr['previews_drawn']} previews; "
+            f"{mixed['compilations']} compilations in {len(mixed['changes'])} mixed changes "
+            f"after a warm-up that compiled {mixed['warm_up_compilations']} "
+            f"({mixed['warm_up_compile_seconds']:.2f} s)"
+        )
     if "W6" in work:
         for case in work["W6"]["surfaces"] + work["W6"]["basin_maps"]:
             lines.append(
@@ -592,6 +620,35 @@ def report(results: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _previous_results(
+    parser: argparse.ArgumentParser, args: argparse.Namespace, out: Path | None
+) -> dict[str, Any]:
+    """The results file ``--merge`` writes into, checked before anything runs."""
+    if args.only is None:
+        parser.error("--merge needs --only: name the workloads to rerun")
+    if out is None or not out.exists():
+        parser.error(f"--merge needs an existing results file; {out} does not exist (use --out)")
+    previous = json.loads(out.read_text())
+    if previous.get("settings", {}).get("quick") != args.quick:
+        kind = "quick" if previous.get("settings", {}).get("quick") else "full"
+        parser.error(f"{out} holds a {kind} run; merge only runs of the same kind")
+    return previous
+
+
+def _merged(previous: dict[str, Any], new: dict[str, Any]) -> dict[str, Any]:
+    """``previous`` with the workloads of ``new`` replaced; ``merged`` says when and where."""
+    names = list(new["workloads"])
+    previous["workloads"].update(new["workloads"])
+    merged = []
+    for m in previous.get("merged", []):  # earlier merges keep the workloads not rerun now
+        kept = [w for w in m["workloads"] if w not in names]
+        if kept:
+            merged.append({**m, "workloads": kept})
+    merged.append({"workloads": names, "machine": new["machine"], "settings": new["settings"]})
+    previous["merged"] = merged
+    return previous
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description="basinview benchmarks (issue 5)")
     parser.add_argument("--quick", action="store_true", help="tiny sizes, one repeat (smoke test)")
@@ -600,7 +657,14 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--baseline-repeats", type=int, default=None)
     parser.add_argument("--only", default=None, help="comma-separated workloads, e.g. W1,W3")
     parser.add_argument("--devices", type=int, default=0, help="CPU devices (0: all cores)")
+    parser.add_argument(
+        "--merge",
+        action="store_true",
+        help="write the workloads of --only into the existing results file, keeping the others",
+    )
     args = parser.parse_args(argv)
+    out = args.out if args.out is not None else (None if args.quick else DEFAULT_OUT)
+    previous = _previous_results(parser, args, out) if args.merge else None
 
     from basinview.core import use_all_cores
 
@@ -643,7 +707,8 @@ def main(argv: list[str] | None = None) -> int:
             rec["percent_of_matmul"] = 100 * rec["gflops"] / peak
     results["machine"]["load_average_at_end"] = load_average()
     print(report(results))
-    out = args.out if args.out is not None else (None if args.quick else DEFAULT_OUT)
+    if previous is not None:
+        results = _merged(previous, results)
     if out is not None:
         out.write_text(json.dumps(results, indent=1, default=float) + "\n")
         print(f"wrote {out}", file=sys.stderr)

@@ -52,6 +52,9 @@ class Sizes:
     w4_starts: int
     w4_rates: int
     w4_steps: int
+    w5_resolution: int
+    w5_steps: int
+    w5_rounds: int
     w6_rows: int
     w6_resolution: int
     w6_basin_resolution: tuple[int, int]
@@ -71,6 +74,9 @@ FULL = Sizes(
     w4_starts=16,
     w4_rates=4,
     w4_steps=300,
+    w5_resolution=61,
+    w5_steps=400,
+    w5_rounds=5,
     w6_rows=1_000_000,
     w6_resolution=300,
     w6_basin_resolution=(50, 40),
@@ -90,6 +96,9 @@ QUICK = Sizes(
     w4_starts=2,
     w4_rates=2,
     w4_steps=15,
+    w5_resolution=21,
+    w5_steps=100,
+    w5_rounds=1,
     w6_rows=20_000,
     w6_resolution=20,
     w6_basin_resolution=(8, 5),

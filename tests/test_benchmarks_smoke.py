@@ -77,3 +77,18 @@ def test_flops_and_memory_are_reported(quick_results):
         for run in ("first_run", "second_run"):
             assert 0 < case[run]["peak_rss_mib"] < 2048
             assert case[run]["added_peak_mib"] >= 0 or not case[run]["peak_reset"]
+
+
+def test_explorer_interaction_is_measured_and_compiles_nothing_after_warm_up(quick_results):
+    rec = quick_results["workloads"]["W5"]
+    lr = rec["learning_rate_change"]
+    assert lr["full"]["changes"] == 8
+    assert 0 < lr["full"]["min_ms"] <= lr["full"]["median_ms"] <= lr["full"]["max_ms"]
+    assert lr["compilations"] == 0
+    mixed = rec["mixed_changes"]
+    assert len(mixed["changes"]) == 20
+    assert {"learning rate", "momentum", "click", "random starts"} <= set(mixed["latency"])
+    # Choosing momentum in the warm-up compiles; the 20 changes after it do not.
+    assert mixed["warm_up_compilations"] >= 1
+    assert mixed["compilations"] == 0
+    assert rec["build"]["compilations"] >= 1
