@@ -1,4 +1,9 @@
-"""A JupyterLab server on 127.0.0.1 for browser tests: own config dirs, port and token."""
+"""A Jupyter server on 127.0.0.1 for browser tests: own config dirs, port and token.
+
+``frontend="lab"`` starts ``jupyter lab`` (JupyterLab 4) and opens notebooks at
+``/lab/tree/<name>``; ``frontend="notebook7"`` starts ``jupyter notebook``
+(Notebook 7, the ``notebook`` package) and opens them at ``/notebooks/<name>``.
+"""
 
 from __future__ import annotations
 
@@ -26,8 +31,16 @@ CHROMIUM_ARGS = [
 ]
 
 
+# front-end name -> (jupyter subcommand, extra options, notebook URL path template)
+FRONTENDS = {
+    "lab": ("lab", ["--LabApp.news_url=None"], "/lab/tree/{name}?token={token}&reset"),
+    "notebook7": ("notebook", [], "/notebooks/{name}?token={token}"),
+}
+
+
 @dataclass
-class LabServer:
+class JupyterServer:
+    frontend: str
     root: Path
     port: int
     token: str
@@ -36,7 +49,8 @@ class LabServer:
     log_handle: Any
 
     def url(self, notebook: str) -> str:
-        return f"http://127.0.0.1:{self.port}/lab/tree/{notebook}?token={self.token}&reset"
+        path = FRONTENDS[self.frontend][2].format(name=notebook, token=self.token)
+        return f"http://127.0.0.1:{self.port}{path}"
 
     def stop(self) -> None:
         try:
@@ -60,8 +74,13 @@ def _free_port() -> int:
         return int(s.getsockname()[1])
 
 
-def start_lab(workdir: Path, notebooks: list[Path], *, timeout: float = 90.0) -> LabServer:
-    """Start JupyterLab serving copies of ``notebooks`` from ``workdir/root``."""
+def start_jupyter(
+    workdir: Path, notebooks: list[Path], *, frontend: str = "lab", timeout: float = 90.0
+) -> JupyterServer:
+    """Start the ``frontend``'s server serving copies of ``notebooks`` from ``workdir/root``."""
+    if frontend not in FRONTENDS:
+        raise ValueError(f"unknown front-end {frontend!r}; use one of {sorted(FRONTENDS)}")
+    command, options, _ = FRONTENDS[frontend]
     root = workdir / "root"
     root.mkdir(parents=True)
     for nb in notebooks:
@@ -71,6 +90,7 @@ def start_lab(workdir: Path, notebooks: list[Path], *, timeout: float = 90.0) ->
         d = workdir / name.lower()
         d.mkdir()
         env[name] = str(d)
+    # Both front-ends read labconfig/page_config.json: no news toast over the notebook.
     labconfig = workdir / "jupyter_config_dir" / "labconfig"
     labconfig.mkdir(parents=True)
     (labconfig / "page_config.json").write_text(
@@ -80,14 +100,14 @@ def start_lab(workdir: Path, notebooks: list[Path], *, timeout: float = 90.0) ->
         filter(None, [str(Path(__file__).resolve().parents[2]), env.get("PYTHONPATH")])
     )
     port, token = _free_port(), secrets.token_hex(16)
-    log = workdir / "jupyterlab.log"
+    log = workdir / f"jupyter-{frontend}.log"
     handle = log.open("w")
     process = subprocess.Popen(
         [
             sys.executable,
             "-m",
             "jupyter",
-            "lab",
+            command,
             "--no-browser",
             "--ip=127.0.0.1",
             f"--port={port}",
@@ -95,18 +115,18 @@ def start_lab(workdir: Path, notebooks: list[Path], *, timeout: float = 90.0) ->
             "--allow-root",
             f"--IdentityProvider.token={token}",
             f"--ServerApp.root_dir={root}",
-            "--LabApp.news_url=None",
+            *options,
         ],
         env=env,
         stdout=handle,
         stderr=subprocess.STDOUT,
     )
-    server = LabServer(root, port, token, process, log, handle)
+    server = JupyterServer(frontend, root, port, token, process, log, handle)
     deadline = time.monotonic() + timeout
     while time.monotonic() < deadline:
         if process.poll() is not None:
             server.stop()
-            raise RuntimeError(f"JupyterLab exited early:\n{log.read_text()[-3000:]}")
+            raise RuntimeError(f"jupyter {command} exited early:\n{log.read_text()[-3000:]}")
         try:
             with urllib.request.urlopen(
                 f"http://127.0.0.1:{port}/api/status?token={token}", timeout=2
@@ -116,4 +136,6 @@ def start_lab(workdir: Path, notebooks: list[Path], *, timeout: float = 90.0) ->
         except OSError:
             time.sleep(0.3)
     server.stop()
-    raise RuntimeError(f"JupyterLab did not answer within {timeout} s:\n{log.read_text()[-3000:]}")
+    raise RuntimeError(
+        f"jupyter {command} did not answer within {timeout} s:\n{log.read_text()[-3000:]}"
+    )

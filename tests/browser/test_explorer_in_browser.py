@@ -1,13 +1,15 @@
-"""End to end: the quickstart notebook's Explorer in JupyterLab, in a real browser.
+"""End to end: the quickstart notebook's Explorer in JupyterLab 4 and Notebook 7, in a real browser.
 
-Starts JupyterLab on 127.0.0.1 (own config dirs, port and token), opens the
-quickstart notebook in Debian's chromium driven by playwright, runs all
-cells through the UI and checks what a user would: the Explorer renders,
-changing the learning rate redraws the paths, clicking the contour adds a
-start, recording puts a snapshot in the notebook, and the snapshot survives
-saving and reopening. Screenshots go to ``artifacts/browser/``.
+For each front-end, starts its server on 127.0.0.1 (own config dirs, port and
+token), opens the quickstart notebook in Debian's chromium driven by
+playwright, runs all cells through the UI and checks what a user would: the
+Explorer renders, changing the learning rate redraws the paths, clicking the
+contour adds a start, recording puts a snapshot in the notebook, and the
+snapshot survives saving and reopening. Screenshots go to
+``artifacts/browser/<front-end>/``.
 
-Run: ``python -m pytest -m browser tests/browser`` (needs /usr/bin/chromium).
+Run: ``python -m pytest -m browser tests/browser`` (needs /usr/bin/chromium); one
+front-end only: add ``-k lab`` or ``-k notebook7``.
 """
 
 from __future__ import annotations
@@ -16,13 +18,15 @@ import json
 import os
 import re
 import time
+from dataclasses import dataclass
+from importlib import metadata
 from pathlib import Path
 
 import pytest
 from playwright.sync_api import TimeoutError as PlaywrightTimeout
 from playwright.sync_api import sync_playwright
 
-from .jupyter_server import CHROMIUM, CHROMIUM_ARGS, start_lab
+from .jupyter_server import CHROMIUM, CHROMIUM_ARGS, start_jupyter
 
 pytestmark = pytest.mark.browser
 
@@ -62,7 +66,7 @@ def _path_shapes(page) -> list[str]:
 
 
 def _wait(page, condition: str, arg=None, timeout_s: float = 120.0) -> None:
-    """Wait until the JS ``condition`` holds, accepting JupyterLab's kernel dialog if it pops up."""
+    """Wait until the JS ``condition`` holds, accepting the kernel dialog if it pops up."""
     deadline = time.monotonic() + timeout_s
     while True:
         try:
@@ -76,7 +80,46 @@ def _wait(page, condition: str, arg=None, timeout_s: float = 120.0) -> None:
                 raise
 
 
-KERNEL_IDLE = "() => /\\| Idle/.test(document.querySelector('#jp-main-statusbar').innerText)"
+@dataclass(frozen=True)
+class Frontend:
+    """What differs between the front-ends: where they show kernel and save state."""
+
+    name: str
+    kernel_idle: str  # JS: the page's kernel is connected and idle
+    saved: str  # JS: the page shows the notebook as saved
+    viewport: dict
+
+
+FRONTENDS = {
+    # JupyterLab 4: the status bar reads "Python 3 (ipykernel) | Idle"; a notebook tab
+    # with unsaved changes carries jp-mod-dirty.
+    "lab": Frontend(
+        "lab",
+        kernel_idle="() => /\\| Idle/.test(document.querySelector('#jp-main-statusbar').innerText)",
+        saved="() => !document.querySelector('.jp-mod-dirty')",
+        viewport={"width": 1500, "height": 1100},
+    ),
+    # Notebook 7: no status bar and no dirty marker. The toolbar names the kernel
+    # ("No Kernel" until a session exists) and its progress circle carries the kernel
+    # status; the top bar shows "Last Checkpoint: ..." once a save made a checkpoint
+    # (the served copy has none before). The page scrolls under a fixed header, so a
+    # taller window keeps the whole Explorer in one screenshot.
+    "notebook7": Frontend(
+        "notebook7",
+        kernel_idle="""() => {
+            const name = document.querySelector('.jp-NotebookPanel-toolbar .jp-KernelName');
+            const status = document.querySelector('.jp-NotebookPanel-toolbar .jp-Notebook-ExecutionIndicator');
+            return !!name && !!status && name.textContent.trim() !== ''
+                && !/No Kernel/.test(name.textContent) && status.dataset.status === 'idle';
+        }""",
+        saved="""() => {
+            const c = document.querySelector('.jp-NotebookCheckpoint');
+            return !!c && /Last Checkpoint/.test(c.textContent);
+        }""",
+        viewport={"width": 1500, "height": 1400},
+    ),
+}
+
 ALL_RUN = """() => {
     const prompts = Array.from(document.querySelectorAll('.jp-CodeCell .jp-InputPrompt'));
     return prompts.length > 0 && prompts.every(p => /\\[\\d+\\]/.test(p.textContent));
@@ -96,13 +139,53 @@ def _recorded_settings(path: Path):
     raise AssertionError("no snapshot output in the saved notebook")
 
 
-def test_explorer_in_jupyterlab(tmp_path):
+def _saved_snapshot_count(path: Path) -> int:
+    """How many snapshots the saved notebook's record output lists (-1 if unreadable yet)."""
+    try:
+        notebook = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return -1
+    text = "\n".join(
+        "".join(output.get("data", {}).get("text/markdown", []))
+        for cell in notebook["cells"]
+        for output in cell.get("outputs", [])
+    )
+    counts = [int(n) for n in re.findall(r"basinview snapshots\W*\((\d+)\)", text)]
+    return max(counts, default=0)
+
+
+def _wait_for_saved_snapshots(path: Path, count: int, timeout_s: float = 120.0) -> None:
+    """Wait until the notebook file on disk lists ``count`` snapshots (the save has landed)."""
+    deadline = time.monotonic() + timeout_s
+    while (found := _saved_snapshot_count(path)) != count:
+        if time.monotonic() > deadline:
+            raise AssertionError(
+                f"{path.name} lists {found} snapshots, not {count}, {timeout_s} s after saving"
+            )
+        time.sleep(0.2)
+
+
+def _require_notebook7() -> None:
+    try:
+        found = metadata.version("notebook")
+    except metadata.PackageNotFoundError:
+        found = None
+    if found is None or int(found.split(".")[0]) < 7:
+        pytest.fail(f"Notebook 7 is needed (found notebook {found}): pip install -e '.[browser]'")
+
+
+@pytest.mark.parametrize("frontend", sorted(FRONTENDS))
+def test_explorer_in_browser(tmp_path, frontend):
     if not Path(CHROMIUM).exists():
         pytest.fail(
             f"{CHROMIUM} is missing: install Debian's chromium (apt-get install -y chromium)"
         )
-    ARTIFACTS.mkdir(parents=True, exist_ok=True)
-    server = start_lab(tmp_path, [NOTEBOOK])
+    front = FRONTENDS[frontend]
+    if front.name == "notebook7":
+        _require_notebook7()
+    shots = ARTIFACTS / front.name
+    shots.mkdir(parents=True, exist_ok=True)
+    server = start_jupyter(tmp_path, [NOTEBOOK], frontend=front.name)
     try:
         with sync_playwright() as p:
             context = p.chromium.launch_persistent_context(
@@ -110,14 +193,14 @@ def test_explorer_in_jupyterlab(tmp_path):
                 executable_path=CHROMIUM,
                 headless=True,
                 args=CHROMIUM_ARGS,
-                viewport={"width": 1500, "height": 1100},
+                viewport=front.viewport,
             )
             context.set_default_timeout(TIMEOUT_MS)
             page = context.new_page()
             try:
-                _scenario(page, server)
+                _scenario(page, server, front, shots)
             except Exception:
-                page.screenshot(path=str(ARTIFACTS / "failure.png"), full_page=True)
+                page.screenshot(path=str(shots / "failure.png"), full_page=True)
                 raise
             finally:
                 context.close()
@@ -125,11 +208,11 @@ def test_explorer_in_jupyterlab(tmp_path):
         server.stop()
 
 
-def _scenario(page, server) -> None:
+def _scenario(page, server, front: Frontend, shots: Path) -> None:
     """What a user does, step by step (screenshots along the way)."""
     page.goto(server.url(NOTEBOOK.name))
     page.wait_for_selector(".jp-Notebook .jp-Cell")
-    _wait(page, KERNEL_IDLE)  # the kernel is connected (running earlier drops the request)
+    _wait(page, front.kernel_idle)  # the kernel is connected (running earlier drops the request)
 
     # Run all cells through the menu, then wait until every code cell has run.
     page.locator(".lm-MenuBar-itemLabel", has_text="Run").first.click()
@@ -139,7 +222,7 @@ def _scenario(page, server) -> None:
     widget.scroll_into_view_if_needed()
     page.wait_for_selector(".bv-main .contourlayer")
     assert page.locator(".bv-explorer .widget-label", has_text="learning rate").first.is_visible()
-    widget.screenshot(path=str(ARTIFACTS / "1-rendered.png"))
+    widget.screenshot(path=str(shots / "1-rendered.png"))
 
     # Changing the learning rate redraws the paths.
     before = _path_shapes(page)
@@ -157,7 +240,7 @@ def _scenario(page, server) -> None:
         " return JSON.stringify(now) !== JSON.stringify(old); }",
         arg=before,
     )
-    widget.screenshot(path=str(ARTIFACTS / "2-learning-rate.png"))
+    widget.screenshot(path=str(shots / "2-learning-rate.png"))
 
     # Clicking the contour map adds a start and a path.
     runs = _runs_in_status(page)
@@ -170,7 +253,7 @@ def _scenario(page, server) -> None:
         " return m && Number(m[1]) === n + 1; }",
         arg=runs,
     )
-    widget.screenshot(path=str(ARTIFACTS / "3-clicked-start.png"))
+    widget.screenshot(path=str(shots / "3-clicked-start.png"))
 
     # Recording puts a snapshot into the notebook's output (the notebook may have
     # recorded some already: the count goes up by one).
@@ -179,16 +262,29 @@ def _scenario(page, server) -> None:
     expected = f"basinview snapshots ({count + 1})"
     page.wait_for_selector(f"text={expected}")
     page.locator(f"text={expected}").first.scroll_into_view_if_needed()
-    page.screenshot(path=str(ARTIFACTS / "4-recorded.png"))
+    page.screenshot(path=str(shots / "4-recorded.png"))
 
     # Save, then reopen: the recorded settings are still in the notebook.
     page.locator(".jp-Notebook").first.click(position={"x": 5, "y": 5})
     page.keyboard.press("Control+S")
     saved = server.root / NOTEBOOK.name
-    page.wait_for_function("() => !document.querySelector('.jp-mod-dirty')")
+    page.wait_for_function(front.saved)
+    _wait_for_saved_snapshots(saved, count + 1)
     recorded = _recorded_settings(saved)
     assert recorded.learning_rate == (pytest.approx(1.5),)
     page.goto(server.url(NOTEBOOK.name))
     page.wait_for_selector(".jp-Notebook .jp-Cell")
     page.wait_for_selector(f"text={expected}")
-    page.screenshot(path=str(ARTIFACTS / "5-reopened.png"))
+    # Outputs above the snapshot may still be growing after the reopen (widgets
+    # re-render from the running kernel): scroll until it stays in the middle.
+    page.wait_for_function(
+        """(el) => {
+            const r = el.getBoundingClientRect(), h = window.innerHeight;
+            const placed = r.top > 0.2 * h && r.top < 0.6 * h;
+            if (!placed) el.scrollIntoView({block: 'center'});
+            return placed;
+        }""",
+        arg=page.locator(f"text={expected}").first.element_handle(),
+        polling=250,
+    )
+    page.screenshot(path=str(shots / "5-reopened.png"))
