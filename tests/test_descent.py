@@ -20,6 +20,7 @@ from basinview.core import (
     optax_rule,
     random_plane,
     random_starts,
+    run_padding_floor,
 )
 
 from .conftest import himmelblau, quadratic
@@ -245,6 +246,8 @@ def test_optax_factory_and_transformation(bowl):
         ({"hyper": {"learning_rate": 0.5}}, "learning_rate=..."),
         ({"grad_tol": -1.0}, "grad_tol"),
         ({"seed": -3}, "seed"),
+        ({"min_runs": 0}, "min_runs must be an integer from 1"),
+        ({"min_runs": 1.5}, "min_runs must be an integer from 1"),
     ],
 )
 def test_bad_run_arguments_are_explained(bowl, kwargs, message):
@@ -257,6 +260,34 @@ def test_bad_starts_are_explained(bowl):
         descend(bowl, np.array([[np.nan, 0.0]]))
     with pytest.raises(ParameterError, match=r"shape \(S, 2\)"):
         descend(bowl, np.zeros((3, 5)))
+
+
+def test_padding_runs_changes_nothing_but_the_compiled_shape(bowl):
+    starts = np.array([[3.0, -2.0], [0.5, 0.5], [-4.0, 1.0]], np.float32)
+    plain = descend(bowl, starts, learning_rate=[0.05, 0.19], steps=60)
+    with count_compilations() as padded_compile:
+        padded = descend(bowl, starts, learning_rate=[0.05, 0.19], steps=60, min_runs=16)
+    assert padded_compile.count == 1  # 6 runs padded to 16: another shape, compiled once
+    for name in ("final", "losses", "path", "stop_step", "status"):
+        np.testing.assert_array_equal(getattr(padded, name), getattr(plain, name))
+    with count_compilations() as reuse:  # 1..16 runs share that program
+        for n in (1, 2, 3):
+            runs = descend(bowl, starts[:n], learning_rate=0.1, steps=60, min_runs=16)
+            assert len(runs) == n
+    assert reuse.count == 0
+
+
+def test_padding_floor_follows_the_cost_of_a_run(bowl):
+    assert run_padding_floor(bowl) == 16  # a 2-parameter quadratic: padding is free
+    rows = np.random.default_rng(0).standard_normal((200_000, 8)).astype(np.float32)
+
+    def mse(w, x):
+        return jnp.mean((x @ w - 1.0) ** 2)
+
+    big = Problem(mse, jnp.zeros(8), rows)
+    # Each run writes megabytes per step (200k rows): no padding.
+    assert run_padding_floor(big) == 1
+    assert run_padding_floor(big, budget_bytes=2**40) == 16
 
 
 def test_changing_values_never_recompiles():

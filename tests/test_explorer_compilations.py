@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from basinview import Explorer
-from basinview.core import count_compilations, descend
+from basinview.core import count_compilations, descend, run_padding_floor
 from basinview.scenarios import beacon
 
 
@@ -101,15 +101,23 @@ def test_rate_momentum_and_start_changes_compile_nothing_after_warm_up(explorer)
     np.testing.assert_array_equal(runs.status, direct.status)
 
 
-def test_a_new_run_count_bucket_compiles_once(explorer):
+def test_run_counts_up_to_the_padding_floor_share_one_program(explorer):
+    # The beacon is small, so the Explorer pads every sweep to 16 runs: any
+    # start count from 1 to 16 runs the program the first view compiled.
+    assert run_padding_floor(explorer.problem) == 16
     c = explorer.controls
+    with count_compilations() as within:
+        for n in (1, 3, 12, 16):
+            c.n_starts.value = n
+            assert len(explorer.results.runs) == n
+    assert within.count == 0
     with count_compilations() as first:
-        c.n_starts.value = 12  # 12 runs: a bucket the view has not used
+        c.n_starts.value = 20  # 20 runs: the next bucket (24), not compiled yet
     assert first.count == 1
-    assert len(explorer.results.runs) == 12
+    assert len(explorer.results.runs) == 20
     with count_compilations() as again:
-        c.n_starts.value = 6
-        c.n_starts.value = 11  # 11 runs are padded to the same bucket of 12
+        c.n_starts.value = 24
+        c.n_starts.value = 17  # padded to the same bucket of 24
         c.learning_rate.value = 0.4
     assert again.count == 0
-    assert len(explorer.results.runs) == 11
+    assert len(explorer.results.runs) == 17

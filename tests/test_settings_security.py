@@ -430,7 +430,7 @@ def test_report_writes_only_to_out(tmp_path):
         code, err = _main(argv, work)
     assert code == 0, err
     # Python's own bytecode cache of the imported model is left aside here (see the
-    # xfail test below); everything else written must be the report itself.
+    # test below); everything else written must be the report itself.
     written = {p for p, w in opened(events) if w and "__pycache__" not in p}
     written_here = {p for p in written if str(tmp_path) in p}
     assert written_here == {str(out)}, written

@@ -17,7 +17,14 @@ from .curvature import (
     stability_bound,
     standard_errors,
 )
-from .descent import STATUSES, Runs, default_plane, default_tolerances, descend
+from .descent import (
+    STATUSES,
+    Runs,
+    default_plane,
+    default_tolerances,
+    descend,
+    run_padding_floor,
+)
 from .errors import BasinviewError, FingerprintWarning, LossError, ParameterError, SettingsError
 from .minima import (
     DIVERGED_LABEL,
@@ -128,6 +135,7 @@ __all__ = [
     "record_settings",
     "refine",
     "regime_of",
+    "run_padding_floor",
     "segment_profile",
     "sequential_bound",
     "span_ranges",

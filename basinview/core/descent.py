@@ -43,7 +43,15 @@ from .problem import Problem, loss_runtime_errors
 from .sharding import batch_devices, replicated, shard_batch, split
 from .starts import Starts, as_starts
 
-__all__ = ["MAX_STEPS", "STATUSES", "Runs", "default_plane", "default_tolerances", "descend"]
+__all__ = [
+    "MAX_STEPS",
+    "STATUSES",
+    "Runs",
+    "default_plane",
+    "default_tolerances",
+    "descend",
+    "run_padding_floor",
+]
 
 MAX_STEPS = 1_000_000
 STATUSES = ("max_steps", "converged", "diverged")
@@ -405,6 +413,21 @@ def _build_run(
     return shard_batch(run, devices, in_batch, out_batch)
 
 
+def run_padding_floor(problem: Problem, *, budget_bytes: int = 4 * 2**20, most: int = 16) -> int:
+    """A ``min_runs`` for interactive use: pad to ``most`` runs when that is cheap.
+
+    The largest power of two up to ``most`` such that that many runs write at
+    most ``budget_bytes`` of value-and-gradient intermediates per step (read
+    off the traced loss, no compilation). Small models get ``most``; large
+    ones 1 (no padding), so padding never multiplies real work by much.
+    """
+    per_run = evaluation_bytes(problem, gradient=True)
+    floor = 1
+    while floor * 2 <= most and floor * 2 * per_run <= budget_bytes:
+        floor *= 2
+    return floor
+
+
 def _runs_per_call(problem: Problem, n_runs: int) -> int:
     """Runs per device and call: bucketed, capped by memory and by cache-sized steps.
 
@@ -489,6 +512,7 @@ def descend(
     seed: int = 0,
     progress: bool | None = None,
     devices: Any = None,
+    min_runs: int = 1,
 ) -> Runs:
     """Run an update rule from many starts and hyper-parameter settings at once.
 
@@ -523,6 +547,12 @@ def descend(
         devices: devices that share the runs: ``None`` (all that JAX shows,
             see :func:`~basinview.core.use_all_cores`), a count, or a list of
             devices. Results do not depend on the number of devices.
+        min_runs: pad every compiled call to at least this many runs. Run
+            counts are padded to a few sizes anyway (1, 2, 3, 4, 6, 8, 12,
+            16, ...), each compiled once; a floor merges the small ones, so
+            an interactive view whose run count changes compiles less often,
+            at the cost of computing the padding (see
+            :func:`run_padding_floor`). Results do not depend on it.
 
     Returns:
         :class:`Runs`, with ``.table`` as a pandas DataFrame.
@@ -548,6 +578,15 @@ def descend(
             raise ParameterError(f"{tname} must be a non-negative number; got {tval!r}.")
     if not (np.isfinite(divergence_factor) and divergence_factor > 0):
         raise ParameterError(f"divergence_factor must be positive; got {divergence_factor!r}.")
+    if (
+        isinstance(min_runs, bool)
+        or not isinstance(min_runs, (int, np.integer))
+        or not 1 <= min_runs <= 4096
+    ):
+        raise ParameterError(
+            f"min_runs must be an integer from 1 to 4096; got {min_runs!r}. Leave it at 1 "
+            "unless you want fewer compiled shapes as the number of runs changes."
+        )
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not (0 <= seed < 2**32):
         raise ParameterError(
             f"seed must be an integer from 0 to 2**32 - 1; got {seed!r}. Take it modulo "
@@ -568,7 +607,7 @@ def descend(
     theta_all = start_set.points[start_index].astype(dtype)
 
     devs = batch_devices(devices)
-    per_device = _runs_per_call(problem, n_runs)
+    per_device = _runs_per_call(problem, max(n_runs, int(min_runs)))
     if n_runs <= per_device:
         devs = devs[:1]  # one call's worth of runs: splitting it would change its shapes
     n_dev = len(devs)

@@ -32,6 +32,7 @@ from ..core import (
     random_plane,
     random_starts,
     record_settings,
+    run_padding_floor,
 )
 from ..core.settings import Settings
 from .state import ViewState, stages_to_update
@@ -197,6 +198,14 @@ class ViewComputer:
             )
         return combine_starts(*parts)
 
+    @property
+    def _run_floor(self) -> int:
+        # Small models pad every sweep to 16 runs, so moving the start-count slider
+        # or clicking starts rarely meets a run count that is not compiled yet.
+        return int(
+            self.problem.cached(("explorer-run-floor",), lambda: run_padding_floor(self.problem))
+        )
+
     def _runs(self, state: ViewState, plane: Plane, starts: Starts) -> Runs:
         return descend(
             self.problem,
@@ -206,4 +215,5 @@ class ViewComputer:
             hyper=state.hyper_dict,
             steps=state.steps,
             plane=plane,
+            min_runs=self._run_floor,
         )

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import plotly.graph_objects as go
 
-__all__ = ["json_safe", "source_uids", "sync_figure"]
+__all__ = ["FigureView", "json_safe", "source_uids", "sync_figure"]
 
 _UIDS = "_basinview_source_uids"
 
@@ -37,12 +37,17 @@ def _same(a: Any, b: Any) -> bool:
 
 
 def json_safe(value: Any) -> Any:
-    """``value`` with NaN and inf replaced by None (strict JSON; plotly draws gaps).
+    """``value`` with NaN and inf replaced by None where they would go into JSON.
 
     Widget messages are JSON: a NaN there breaks the message, while plotly.js
     treats ``null`` in data arrays as a gap, which is what NaN means here.
+    One-dimensional float arrays are left as they are: plotly sends them as
+    binary typed arrays, where NaN is a number (and a gap to plotly.js), and
+    a list of Python objects would cost milliseconds to walk and encode.
     """
     if isinstance(value, np.ndarray):
+        if value.ndim == 1 and value.dtype.kind == "f":
+            return value
         if value.dtype.kind == "f" and not np.all(np.isfinite(value)):
             out = value.astype(object)
             out[~np.isfinite(value)] = None
@@ -94,6 +99,40 @@ def sync_figure(target: go.FigureWidget, source: go.Figure) -> bool:
         target.plotly_relayout(dict.fromkeys(removed_layout))
     setattr(target, _UIDS, new_uids)
     return replaced
+
+
+class FigureView(go.FigureWidget):
+    """A FigureWidget that a view opened later draws as it is now.
+
+    plotly's FigureWidget sends changes as one-off messages and keeps in its
+    synced state only the traces it was created with (it sets that state
+    again only when first displayed). A view opened later (the notebook
+    reopened or the page reloaded while the kernel runs, the widget shown a
+    second time) asks the kernel for the full state and would draw an empty
+    plot. Here the full state is brought up to date when it is asked for,
+    so updates cost nothing extra; views already open keep their own copy
+    current from the messages.
+    """
+
+    def get_state(self, key: Any = None, drop_defaults: bool = False) -> dict[str, Any]:
+        if key is None and hasattr(self, "_layout_obj"):  # (not while plotly builds it)
+            # Written without notification: the views that are open have it already.
+            self._trait_values["_widget_data"] = _structure(self._data)
+            self._trait_values["_widget_layout"] = _structure(self._layout_obj._props)
+        return super().get_state(key=key, drop_defaults=drop_defaults)
+
+
+def _structure(value: Any) -> Any:
+    """A copy of the dicts and lists in ``value`` that shares its arrays and scalars.
+
+    plotly replaces a property's value when it changes and never writes into
+    a stored array, so sharing the arrays is safe and saves copying them.
+    """
+    if isinstance(value, dict):
+        return {k: _structure(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_structure(v) for v in value]
+    return value
 
 
 def _sync_layout(target: go.FigureWidget, source: go.Figure) -> list[str]:

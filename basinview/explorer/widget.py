@@ -39,7 +39,7 @@ from .compute import ViewComputer, ViewResults
 from .controls import Controls
 from .records import SnapshotLog
 from .state import ViewState, default_span, state_from_settings
-from .sync import source_uids, sync_figure
+from .sync import FigureView, source_uids, sync_figure
 
 __all__ = ["SIDE_VIEWS", "Explorer"]
 
@@ -75,7 +75,9 @@ def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewStat
     fields["span"] = as_span(span) if span is not None else default_span(problem, kind)
     origin = kw.get("origin")
     if origin is not None:
-        if isinstance(origin, (tuple, list)) and all(isinstance(v, (int, float, np.number)) for v in origin):
+        if isinstance(origin, (tuple, list)) and all(
+            isinstance(v, (int, float, np.number)) for v in origin
+        ):
             origin = np.asarray(origin, dtype=float)  # a flat vector (as ViewState stores it)
         kw["origin"] = problem.flatten(origin, what="plane origin")
     if "starts" in kw:
@@ -124,9 +126,9 @@ class Explorer:
         self.progress = w.IntProgress(
             value=0, min=0, max=4, layout=w.Layout(width="300px", display="none")
         )
-        self.main = go.FigureWidget(layout={"height": 560, "width": 720})
+        self.main = FigureView(layout={"height": 560, "width": 720})
         self.main.add_class("bv-main")
-        self.side = go.FigureWidget(layout={"height": 460, "width": 720})
+        self.side = FigureView(layout={"height": 460, "width": 720})
         self.table = w.HTML(layout=w.Layout(display="none", max_height="460px", overflow="auto"))
         self.view = w.ToggleButtons(options=list(SIDE_VIEWS), value="relief", description="view")
         self.basins_button = w.Button(

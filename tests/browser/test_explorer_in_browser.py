@@ -288,3 +288,14 @@ def _scenario(page, server, front: Frontend, shots: Path) -> None:
         polling=250,
     )
     page.screenshot(path=str(shots / "5-reopened.png"))
+
+    # The reopened page draws the Explorer again from the running kernel: the
+    # contour and the paths as they were, not an empty plot.
+    widget = page.locator(".bv-explorer").first
+    widget.scroll_into_view_if_needed()
+    page.wait_for_function(
+        "() => { const p = document.querySelector('.bv-main');"
+        " return !!p && !!p.querySelector('.contourlayer path')"
+        " && p.querySelectorAll('.scatterlayer path.js-line').length > 0; }"
+    )
+    widget.screenshot(path=str(shots / "6-reopened-explorer.png"))
