@@ -76,7 +76,9 @@ def test_flops_and_memory_are_reported(quick_results):
     for case in cases:
         for run in ("first_run", "second_run"):
             assert 0 < case[run]["peak_rss_mib"] < 2048
-            assert case[run]["added_peak_mib"] >= 0 or not case[run]["peak_reset"]
+            # The kernel's RSS counters are batched per CPU (tens of pages), so a run that
+            # adds nothing can read a few KiB below its start: allow 1 MiB of that noise.
+            assert case[run]["added_peak_mib"] >= -1.0 or not case[run]["peak_reset"]
 
 
 def test_explorer_interaction_is_measured_and_compiles_nothing_after_warm_up(quick_results):

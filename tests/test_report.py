@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import html
 import re
-import shutil
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -141,31 +139,3 @@ def test_report_writes_only_its_own_file(results, tmp_path):
     before = set(tmp_path.iterdir())
     write_report(tmp_path / "only.html", surface=results["surface"])
     assert set(tmp_path.iterdir()) - before == {tmp_path / "only.html"}
-
-
-@pytest.mark.browser
-@pytest.mark.skipif(shutil.which("chromium") is None, reason="needs Debian chromium")
-def test_report_renders_offline_in_a_browser(page, tmp_path):
-    playwright = pytest.importorskip("playwright.sync_api")
-    path = tmp_path / "offline.html"
-    path.write_text(page, encoding="utf-8")
-    requests: list[str] = []
-    with playwright.sync_playwright() as p:
-        browser = p.chromium.launch(
-            executable_path=shutil.which("chromium"),
-            headless=True,
-            args=["--disable-gpu", "--no-first-run", "--disable-background-networking"],
-        )
-        try:
-            tab = browser.new_page()
-            tab.on("request", lambda r: requests.append(r.url))
-            tab.goto(Path(path).as_uri())
-            tab.wait_for_function(
-                "document.querySelectorAll('.plotly-graph-div .main-svg').length >= 6",
-                timeout=15000,
-            )
-            drawn = tab.evaluate("document.querySelectorAll('.plotly-graph-div').length")
-        finally:
-            browser.close()
-    assert drawn == 6
-    assert [u for u in requests if not u.startswith(("file:", "data:", "blob:"))] == []
