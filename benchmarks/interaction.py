@@ -228,8 +228,6 @@ def interaction_record(resolution: int, steps: int, rounds: int) -> dict[str, An
     """Build the quickstart Explorer and measure W5 (see the module docstring)."""
     from basinview.core import count_compilations
 
-    from .timing import compile_clock
-
     record: dict[str, Any] = {
         "date": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "what": f"quickstart Explorer (beacon, {resolution} x {resolution} surface, "
@@ -237,13 +235,13 @@ def interaction_record(resolution: int, steps: int, rounds: int) -> dict[str, An
         "setting control values; a change is timed from the assignment until the handler "
         "returned with both FigureWidgets updated",
     }
-    with compile_clock() as clock, count_compilations() as counter:
+    with count_compilations() as counter:
         start = time.perf_counter()
         ex = quickstart_explorer(resolution=resolution, steps=steps)
         record["build"] = {
             "seconds": time.perf_counter() - start,
             "compilations": counter.count,
-            "compile_seconds": clock.seconds,
+            "compile_seconds": counter.seconds,
         }
     previews = []
     preview = ex.computer.preview
@@ -281,7 +279,7 @@ def interaction_record(resolution: int, steps: int, rounds: int) -> dict[str, An
     warm_up, changes = mixed_changes()
     steps_warm = []
     for change in warm_up:
-        with compile_clock() as clock, count_compilations() as counter:
+        with count_compilations() as counter:
             seconds = apply_change(ex, change)
         steps_warm.append(
             {
@@ -289,7 +287,7 @@ def interaction_record(resolution: int, steps: int, rounds: int) -> dict[str, An
                 "runs": len(ex.results.runs),
                 "ms": 1e3 * seconds,
                 "compilations": counter.count,
-                "compile_seconds": clock.seconds,
+                "compile_seconds": counter.seconds,
             }
         )
     by_kind: dict[str, list[float]] = {}

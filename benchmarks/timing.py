@@ -2,60 +2,27 @@
 
 from __future__ import annotations
 
-import contextlib
 import datetime as _dt
 import os
 import platform
 import resource
 import statistics
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
 import jax
-import jax.monitoring
 import numpy as np
 
+from basinview.core import count_compilations
+
 __all__ = [
-    "CompileClock",
     "Contender",
-    "compile_clock",
     "cpu_seconds",
     "machine",
     "race",
 ]
-
-_COMPILE_EVENTS = (
-    "/jax/core/compile/jaxpr_trace_duration",
-    "/jax/core/compile/jaxpr_to_mlir_module_duration",
-    "/jax/core/compile/backend_compile_duration",
-)
-
-
-class CompileClock:
-    """Seconds JAX spent tracing, lowering and compiling while the clock ran."""
-
-    def __init__(self) -> None:
-        self.seconds = 0.0
-        self.count = 0
-
-    def _listener(self, event: str, duration: float, **kwargs: Any) -> None:
-        if event in _COMPILE_EVENTS:
-            self.seconds += duration
-            if event == _COMPILE_EVENTS[-1]:
-                self.count += 1
-
-
-@contextlib.contextmanager
-def compile_clock() -> Iterator[CompileClock]:
-    """Measure compile time (trace + lower + XLA compile) inside a ``with`` block."""
-    clock = CompileClock()
-    jax.monitoring.register_event_duration_secs_listener(clock._listener)
-    try:
-        yield clock
-    finally:
-        jax.monitoring.unregister_event_duration_listener(clock._listener)
 
 
 def cpu_seconds() -> float:
@@ -113,11 +80,11 @@ def race(contenders: list[Contender]) -> list[Contender]:
     alike. The first call (compilation, tuning, caches) is reported apart.
     """
     for c in contenders:
-        with compile_clock() as clock:
+        with count_compilations() as compiles:
             c.first_seconds = _once(c)
         c.cpu_times.clear()
-        c.compile_seconds = clock.seconds
-        c.compilations = clock.count
+        c.compile_seconds = compiles.seconds
+        c.compilations = compiles.count
     for r in range(max(c.repeats for c in contenders)):
         for c in contenders:
             if r < c.repeats:

@@ -32,7 +32,12 @@ __all__ = [
     "runs_per_call_for",
 ]
 
-_COMPILE_EVENT = "/jax/core/compile/backend_compile_duration"
+# What JAX reports while it compiles: tracing, lowering, then XLA's backend compile.
+_COMPILE_EVENTS = (
+    "/jax/core/compile/jaxpr_trace_duration",
+    "/jax/core/compile/jaxpr_to_mlir_module_duration",
+    "/jax/core/compile/backend_compile_duration",
+)
 
 # Bytes of loss intermediates one vectorised chunk of grid points may write.
 CHUNK_BUDGET_BYTES = 8 * 2**20
@@ -176,14 +181,22 @@ def progress_bar(
 
 
 class CompileCounter:
-    """Number of XLA compilations seen while the counter was active."""
+    """XLA compilations seen while the counter was active, and the time they took.
+
+    Attributes:
+        count: backend (XLA) compilations.
+        seconds: time spent tracing, lowering and compiling.
+    """
 
     def __init__(self) -> None:
         self.count = 0
+        self.seconds = 0.0
 
     def _listener(self, event: str, duration_secs: float, **kwargs: str | int) -> None:
-        if event == _COMPILE_EVENT:
-            self.count += 1
+        if event in _COMPILE_EVENTS:
+            self.seconds += duration_secs
+            if event == _COMPILE_EVENTS[-1]:
+                self.count += 1
 
 
 @contextlib.contextmanager
