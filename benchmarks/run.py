@@ -246,19 +246,29 @@ def w1(ctx: Context) -> dict[str, Any]:
     return out
 
 
-def w2(ctx: Context) -> dict[str, Any]:
-    """W2: small MLP surface on a filter-normalised random plane."""
+def _mlp_view(rows: int) -> tuple[Any, Any, Any]:
+    """The W2/W4 network on ``rows`` rows: its data, Problem and filter-normalised plane."""
     import jax
     import jax.numpy as jnp
 
     from basinview.core import Problem, random_plane
 
-    from .workloads import mlp_data, mlp_init, mlp_loss, mlp_loss_np
+    from .workloads import mlp_data, mlp_init, mlp_loss
+
+    data = mlp_data(rows)
+    prob = Problem(mlp_loss, jax.tree.map(jnp.asarray, mlp_init(0)), data.x, data.y)
+    return data, prob, random_plane(prob, seed=1, normalise="filter")
+
+
+def w2(ctx: Context) -> dict[str, Any]:
+    """W2: small MLP surface on a filter-normalised random plane."""
+    import jax
+    import jax.numpy as jnp
+
+    from .workloads import mlp_loss, mlp_loss_np
 
     s = ctx.sizes
-    data = mlp_data(s.w2_rows)
-    prob = Problem(mlp_loss, jax.tree.map(jnp.asarray, mlp_init(0)), data.x, data.y)
-    plane = random_plane(prob, seed=1, normalise="filter")
+    data, prob, plane = _mlp_view(s.w2_rows)
     tree = lambda v: jax.tree.map(np.asarray, prob.unflatten(v))
     o, u, v = tree(plane.origin), tree(plane.d1), tree(plane.d2)
 
@@ -416,15 +426,11 @@ def w4(ctx: Context) -> dict[str, Any]:
     import jax
     import jax.numpy as jnp
 
-    from basinview.core import Problem, random_plane
-
     from .baselines import descent_loop
-    from .workloads import mlp_data, mlp_flatten_np, mlp_init, mlp_loss, mlp_value_and_grad_np
+    from .workloads import mlp_flatten_np, mlp_init, mlp_loss, mlp_value_and_grad_np
 
     s = ctx.sizes
-    data = mlp_data(s.w2_rows)
-    prob = Problem(mlp_loss, jax.tree.map(jnp.asarray, mlp_init(0)), data.x, data.y)
-    plane = random_plane(prob, seed=1, normalise="filter")
+    data, prob, plane = _mlp_view(s.w2_rows)
     inits = [mlp_init(seed) for seed in range(1, s.w4_starts + 1)]
     starts = np.stack([prob.flatten(p) for p in inits])
     if not np.array_equal(starts, np.stack([mlp_flatten_np(p) for p in inits])):
