@@ -180,6 +180,7 @@ def step_size_sweep(
                 if (sub.status == "converged").any()
                 else np.nan,
                 "regime": regime_of(sub.status.to_numpy(), sub.oscillating.to_numpy()),
+                "preconditioned_sharpness": _final_sharpness(problem, runs, sub),
             }
         )
     summary = pd.DataFrame(rows)
@@ -194,11 +195,9 @@ def step_size_sweep(
     threshold = None
     if runs.preconditioner is not None:
         threshold = adaptive_threshold(rule.name, settings)
-        sharp = _final_sharpness(problem, runs, table, rates)
-        summary["preconditioned_sharpness"] = sharp
+        sharp = summary.preconditioned_sharpness.to_numpy()
         summary["stability_ratio"] = rates * sharp / threshold if threshold is not None else np.nan
     else:
-        summary["preconditioned_sharpness"] = np.nan
         summary["stability_ratio"] = rates / predicted if predicted is not None else np.nan
     stable = summary[summary.diverged == 0].learning_rate
     observed = float(stable.max()) if len(stable) else None
@@ -216,21 +215,17 @@ def step_size_sweep(
     )
 
 
-def _final_sharpness(
-    problem: Problem, runs: Runs, table: pd.DataFrame, rates: np.ndarray
-) -> np.ndarray:
-    """``lambda_max(P^-1 H)`` at the end of each rate's lowest-loss run that did not diverge."""
-    assert runs.preconditioner is not None
-    out = np.full(len(rates), np.nan)
-    for i, lr in enumerate(rates):
-        sub = table[
-            np.isclose(table.learning_rate, lr, rtol=1e-12, atol=0) & (table.status != "diverged")
-        ]
-        loss = sub.final_loss.to_numpy(dtype=float)
-        if not len(sub) or not np.isfinite(loss).any():
-            continue
-        run = int(sub.index[int(np.nanargmin(loss))])
-        precond = runs.preconditioner[run]
-        if np.all(np.isfinite(precond)) and np.all(precond > 0):
-            out[i] = preconditioned_sharpness(problem, runs.final[run], precond)
-    return out
+def _final_sharpness(problem: Problem, runs: Runs, sub: pd.DataFrame) -> float:
+    """``lambda_max(P^-1 H)`` at the end of the lowest-loss run of ``sub`` that did not
+    diverge (NaN for rules without a preconditioner or when there is no such run)."""
+    if runs.preconditioner is None:
+        return np.nan
+    kept = sub[sub.status != "diverged"]
+    loss = kept.final_loss.to_numpy(dtype=float)
+    if not np.isfinite(loss).any():
+        return np.nan
+    run = int(kept.index[int(np.nanargmin(loss))])
+    precond = runs.preconditioner[run]
+    if not (np.all(np.isfinite(precond)) and np.all(precond > 0)):
+        return np.nan
+    return preconditioned_sharpness(problem, runs.final[run], precond)
