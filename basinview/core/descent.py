@@ -703,8 +703,11 @@ def _launch_and_collect(
     data: Any,
     progress: bool | None,
 ) -> list[tuple[Any, ...]]:
-    """Dispatch every call of a sweep, then read the results back (per call, trimmed)."""
-    max_steps, tols, origin, proj, dirs, seed_arr = fixed
+    """Dispatch every call of a sweep, then read the results back (per call, trimmed).
+
+    ``fixed`` holds the arguments every call shares, in the compiled function's
+    order: step budget, tolerances, plane origin, projector, directions, seed.
+    """
     pending = []
     for lo in range(0, n_runs, per_call):
         hi = min(lo + per_call, n_runs)
@@ -712,27 +715,10 @@ def _launch_and_collect(
         idx = np.concatenate([np.arange(lo, hi), np.full(pad, lo)])
         active = np.arange(per_call) < (hi - lo)
         hyper_c = {k: v[idx].astype(dtype) for k, v in hyper_rows.items()}
-        batch_args = jax.device_put(
+        theta, hyper, active, starts = jax.device_put(
             (theta_all[idx], hyper_c, active, start_index[idx].astype(np.int32)), shared
         )
-        pending.append(
-            (
-                hi - lo,
-                fn(
-                    batch_args[0],
-                    batch_args[1],
-                    batch_args[2],
-                    max_steps,
-                    tols,
-                    origin,
-                    proj,
-                    dirs,
-                    seed_arr,
-                    batch_args[3],
-                    data,
-                ),
-            )
-        )
+        pending.append((hi - lo, fn(theta, hyper, active, *fixed, starts, data)))
     outs: list[tuple[Any, ...]] = []
     show = progress if progress is not None else len(pending) > 4
     for m, result in progress_bar(pending, total=len(pending), show=show, desc="descent"):
