@@ -421,7 +421,7 @@ def _report(args: argparse.Namespace) -> int:
     ):
         if value < low:
             raise CommandError(f"{name} must be at least {low}; got {value}.")
-    (a0, a1), (b0, b1) = span_ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
     draws = np.random.default_rng(args.seed).uniform(0.1, 0.9, size=(args.starts, 2))
     starts = core.explicit_starts(
         problem, plane.lift(a0 + draws[:, 0] * (a1 - a0), b0 + draws[:, 1] * (b1 - b0))

@@ -100,11 +100,10 @@ def summary_lines(
         )
     if surface is not None:
         a, b, low = surface.grid_minimum()
-        sa, sb = F.coordinate_shift(surface.plane)
         t1, t2 = surface.plane.axis_titles
         lines.append(
             f"Slice: {surface.loss.shape[1]} × {surface.loss.shape[0]} grid; lowest grid point "
-            f"{t1} = {_fmt(a + sa)}, {t2} = {_fmt(b + sb)} with loss {_fmt(low)}."
+            f"{t1} = {_fmt(a)}, {t2} = {_fmt(b)} with loss {_fmt(low)}."
         )
     if runs is not None:
         status = np.asarray(runs.status)

@@ -97,7 +97,7 @@ def beacon(seed: int = 2026, noise: float = 0.05) -> Scenario:
         problem=problem,
         plane_axes=("x", "y"),
         plane_origin={"x": 5.0, "y": 0.0},
-        span=((-7.0, 7.0), (-6.0, 6.0)),
+        span=((-2.0, 12.0), (-6.0, 6.0)),  # parameter values: x from -2 to 12
         resolution=121,
         learning_rates=(0.02, 0.2, 0.9, 1.3),
         steps=400,

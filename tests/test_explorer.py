@@ -141,9 +141,8 @@ def test_clicking_the_map_adds_a_start(explorer):
     assert len(explorer.results.runs) == n_runs + 1
     # the axes read parameter values: the new start is at x = 8, y = 4
     np.testing.assert_allclose(explorer.results.starts.points[-1], [8.0, 4.0], atol=1e-6)
-    np.testing.assert_allclose(
-        explorer.results.runs.path[-1, 0], [3.0, 4.0], atol=1e-5
-    )  # plane coords
+    # ... and its recorded path starts at the same numbers (plane coordinates are values)
+    np.testing.assert_allclose(explorer.results.runs.path[-1, 0], [8.0, 4.0], atol=1e-5)
     explorer.controls.clear_clicks.click()
     assert len(explorer.results.runs) == n_runs
 

@@ -264,21 +264,31 @@ def test_long_paths_are_thinned_but_keep_true_steps():
 
 def test_runs_from_another_plane_are_refused(bowl_view):
     prob, _, _, runs = bowl_view
-    other = core.axes_plane(prob, "x", "y", origin={"x": 1.0, "y": 0.0})
+    other = core.random_plane(prob, seed=2, normalise="none")
     other_surface = core.evaluate_surface(prob, other, span=1.0, resolution=5)
     with pytest.raises(core.BasinviewError, match="another plane"):
         F.slice_figure(other_surface, runs)
     with pytest.raises(core.BasinviewError, match="another plane"):
         F.relief_figure(other_surface, runs)
+    # An axes plane of the same two parameters around another centre is the same
+    # plane in the same coordinates (parameter values): its runs are drawn.
+    moved = core.axes_plane(prob, "x", "y", origin={"x": 1.0, "y": 0.0})
+    moved_surface = core.evaluate_surface(prob, moved, span=1.0, resolution=5)
+    assert moved_surface.a[0] == 0.0 and moved_surface.a[-1] == 2.0
+    F.slice_figure(moved_surface, runs)
 
 
 def test_axes_read_in_parameter_values_on_an_axes_plane():
     prob = core.Problem(bowl, {"x": 0.5, "y": 0.5})
     plane = core.axes_plane(prob, "x", "y", origin={"x": 5.0, "y": -1.0})
     surface = core.evaluate_surface(prob, plane, span=1.0, resolution=5)
+    # the surface itself holds parameter values (centre +- span), and the figure
+    # shows the same numbers, with no shift
+    np.testing.assert_allclose(surface.a, [4.0, 4.5, 5.0, 5.5, 6.0])
+    np.testing.assert_allclose(surface.b, [-2.0, -1.5, -1.0, -0.5, 0.0])
     fig = F.slice_figure(surface)
-    np.testing.assert_allclose(np.asarray(fig.data[0].x, dtype=float), surface.a + 5.0)
-    np.testing.assert_allclose(np.asarray(fig.data[0].y, dtype=float), surface.b - 1.0)
+    np.testing.assert_allclose(np.asarray(fig.data[0].x, dtype=float), surface.a)
+    np.testing.assert_allclose(np.asarray(fig.data[0].y, dtype=float), surface.b)
     assert list(fig.layout.xaxis.range) == [4.0, 6.0]
 
 

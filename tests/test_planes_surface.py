@@ -23,8 +23,11 @@ from .conftest import quadratic
 def test_axes_plane_lifts_and_projects():
     prob = Problem(lambda p: jnp.sum(p["w"] ** 2) + p["b"] ** 2, {"w": jnp.arange(3.0), "b": 1.0})
     plane = axes_plane(prob, "w[2]", "b")
+    # plane coordinates are the two parameters' values; the others are held
+    assert plane.coordinates == "values" and plane.centre == (2.0, 1.0)
+    np.testing.assert_allclose(plane.centre_point, prob.theta0)
     theta = plane.lift(0.5, -2.0)
-    expected = prob.flatten({"w": jnp.array([0.0, 1.0, 2.5]), "b": -1.0})
+    expected = prob.flatten({"w": jnp.array([0.0, 1.0, 0.5]), "b": -2.0})
     np.testing.assert_allclose(theta, expected)
     a, b, resid = plane.project(theta)
     assert (float(a), float(b), float(resid)) == pytest.approx((0.5, -2.0, 0.0))
@@ -90,9 +93,10 @@ def test_surface_is_independent_of_chunk_size(rng):
 def test_nan_region_gives_gaps_not_a_crash():
     prob = Problem(lambda p: jnp.log(p["x"]) ** 2 + p["y"] ** 2, {"x": 1.0, "y": 0.0})
     s = evaluate_surface(prob, axes_plane(prob, "x", "y"), span=2.0, resolution=21)
-    assert np.isnan(s.loss[:, s.a < -1.0]).all()  # x = 1 + a < 0: log undefined
-    assert np.isfinite(s.loss[:, s.a > -1.0]).all()
-    assert s.finite_fraction == pytest.approx(15 / 21)  # a <= -1: 6 of 21 columns
+    assert s.a[0] == pytest.approx(-1.0) and s.a[-1] == pytest.approx(3.0)  # x = 1 +- 2
+    assert np.isnan(s.loss[:, s.a < 0.0]).all()  # x = a < 0: log undefined
+    assert np.isfinite(s.loss[:, s.a > 0.0]).all()
+    assert s.finite_fraction == pytest.approx(15 / 21)  # x <= 0: 6 of 21 columns
 
 
 @pytest.mark.parametrize(

@@ -10,6 +10,7 @@ from .curvature import (
     adaptive_threshold,
     gauss_newton_matrix,
     hessian_matrix,
+    hessian_plane,
     hessian_spectrum,
     optimal_fixed_step,
     preconditioned_sharpness,
@@ -49,7 +50,8 @@ from .optimizers import (
     get_rule,
     optax_rule,
 )
-from .planes import Plane, axes_plane, hessian_plane, plane_from_spec, random_plane, through_plane
+from .plane_specs import plane_from_spec, upgrade_record
+from .planes import Plane, axes_plane, random_plane, through_plane
 from .problem import Problem
 from .settings import SCHEMA_VERSION, Settings, View, compute_view, record_settings
 from .sharding import use_all_cores
@@ -144,5 +146,6 @@ __all__ = [
     "starts_from_spec",
     "step_size_sweep",
     "through_plane",
+    "upgrade_record",
     "use_all_cores",
 ]

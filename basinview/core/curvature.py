@@ -25,7 +25,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from .errors import ParameterError
-from .planes import Plane, _origin
+from .planes import Plane, flat_origin
 from .problem import Problem
 
 __all__ = [
@@ -34,7 +34,7 @@ __all__ = [
     "adaptive_threshold",
     "gauss_newton_matrix",
     "hessian_matrix",
-    "hessian_plane_impl",
+    "hessian_plane",
     "hessian_spectrum",
     "optimal_fixed_step",
     "preconditioned_sharpness",
@@ -367,16 +367,34 @@ def standard_errors(problem: Problem, theta: Any, residuals: Callable[..., Any])
     return np.sqrt(s2 * np.diag(np.linalg.inv(jtj)))
 
 
-def hessian_plane_impl(
+def hessian_plane(
     problem: Problem, *, origin: Any = None, method: str = "auto", seed: int = 0
 ) -> Plane:
-    """The plane of the two top Hessian eigenvectors at ``origin`` (unit directions)."""
-    theta, origin_list = _origin(problem, origin)
+    """The plane of the two top Hessian eigenvectors at ``origin``.
+
+    Along these directions the loss curves most steeply upward near the
+    origin, so this slice shows the directions that limit the step size.
+    The directions have unit length; coordinates are offsets along them from
+    the origin (the axis titles say so). ``method`` and ``seed`` are passed
+    to :func:`hessian_spectrum`.
+
+    Args:
+        problem: the problem.
+        origin: parameters (pytree or flat) where the Hessian is taken, and
+            the plane's ``(0, 0)``; defaults to the problem's parameters.
+        method: ``"auto"``, ``"exact"`` or ``"lanczos"``.
+        seed: seed of the Lanczos start vector.
+
+    References:
+        Pearlmutter, B. A. (1994). Fast exact multiplication by the Hessian.
+        Neural Computation 6(1), 147-160.
+    """
+    theta, origin_list = flat_origin(problem, origin)
     spec = hessian_spectrum(problem, theta, k=2, method=method, seed=seed)
     d1, d2 = (spec.vectors[i].astype(problem.dtype) for i in range(2))
     titles = (
-        f"eigenvector 1 (λ = {spec.values[0]:.4g})",
-        f"eigenvector 2 (λ = {spec.values[1]:.4g})",
+        f"offset along eigenvector 1 (λ = {spec.values[0]:.4g})",
+        f"offset along eigenvector 2 (λ = {spec.values[1]:.4g})",
     )
     plane_spec = {"kind": "hessian", "method": method, "seed": int(seed), "origin": origin_list}
     return Plane(theta, d1, d2, titles, plane_spec)

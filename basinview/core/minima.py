@@ -403,7 +403,7 @@ def basin_map(
         raise ParameterError("a basin map uses one learning rate; call basin_map once per rate.")
     if any(np.ndim(v) != 0 for v in (hyper or {}).values()):
         raise ParameterError("a basin map uses one value per hyper-parameter.")
-    (a0, a1), (b0, b1) = span_ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
     ra, rb = _resolution(resolution)
     starts = grid_starts(plane, span=((a0, a1), (b0, b1)), resolution=(ra, rb))
     show = progress if progress is not None else ra * rb > 4096

@@ -5,6 +5,22 @@ A :class:`Plane` is an origin and two directions in the flat parameter space.
 parameters; ``project(theta)`` maps parameters back to the nearest point of
 the plane and reports how far ``theta`` lies off it.
 
+Coordinates. Every number on a plane (a span, a grid of starts, a click on a
+map, ``Surface.a`` / ``b``, recorded paths, basin maps, figure axes) is a
+plane coordinate ``(a, b)``, one system throughout:
+
+* on an axes plane (:func:`axes_plane`) the coordinates are the two
+  parameters' own values: ``(a, b) = (theta[x], theta[y])``
+  (``plane.coordinates == "values"``);
+* on every other plane (random, Hessian, through three points) they are
+  offsets along ``d1`` and ``d2`` from the point the plane was built
+  around, and the axis titles say so (``plane.coordinates == "offsets"``).
+
+``plane.centre`` is that point's own coordinates (``(theta0[x], theta0[y])``
+on an axes plane, ``(0, 0)`` on the others), so a span ``s`` means the
+square ``centre +- s`` on every plane (see
+:func:`~basinview.core.surface.span_ranges`).
+
 Caution: a plane is a slice. The loss on it is not the whole loss, a minimum
 of the slice need not be a minimum of the model, and descent paths leave the
 plane; their projections can cross contours in ways the full dynamics do not.
@@ -23,15 +39,18 @@ from .errors import ParameterError
 from .problem import Problem
 
 __all__ = [
+    "COORDINATES",
     "Plane",
     "axes_plane",
-    "hessian_plane",
-    "plane_from_spec",
+    "flat_origin",
     "random_plane",
     "through_plane",
 ]
 
 NORMALISATIONS = ("filter", "layer", "none")
+_OFFSET_TITLES = ("offset along direction 1", "offset along direction 2")
+COORDINATES = ("values", "offsets")
+"""What plane coordinates are: parameter values (axes planes) or offsets along d1, d2."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -39,9 +58,21 @@ class Plane:
     """An affine plane ``origin + a * d1 + b * d2`` in flat parameter space.
 
     Attributes:
-        origin, d1, d2: flat vectors of length ``n``.
-        axis_titles: titles for the ``a`` and ``b`` axes.
-        spec: JSON-ready description of how the plane was made (for Settings).
+        origin: the parameters at plane coordinates ``(0, 0)``. On an axes
+            plane this is the held point with zeros in the two plane
+            coordinates (so that ``lift(a, b)`` puts ``a`` and ``b`` there);
+            the point the user gave is :attr:`centre_point`.
+        d1, d2: flat directions of length ``n``.
+        axis_titles: titles for the ``a`` and ``b`` axes (offset planes say
+            "offset along ...").
+        spec: JSON-ready description of how the plane was made (for Settings);
+            its ``"origin"`` is the point the user gave (or None).
+        centre: plane coordinates of the point the plane was built around:
+            the two parameters' values on an axes plane, ``(0, 0)`` otherwise.
+            A span ``s`` means ``centre +- s``.
+        coordinates: ``"values"`` (coordinates are the values of the two
+            parameters ``d1`` and ``d2`` pick out; axes planes) or
+            ``"offsets"`` (offsets along ``d1`` and ``d2`` from ``origin``).
     """
 
     origin: np.ndarray
@@ -49,6 +80,8 @@ class Plane:
     d2: np.ndarray
     axis_titles: tuple[str, str] = ("a", "b")
     spec: dict[str, Any] = field(default_factory=dict)
+    centre: tuple[float, float] = (0.0, 0.0)
+    coordinates: str = "offsets"
 
     def __post_init__(self) -> None:
         for name in ("origin", "d1", "d2"):
@@ -77,6 +110,44 @@ class Plane:
                 f"{abs(cos):.8f}); they span a line, not a plane. Choose two "
                 "different coordinates or directions."
             )
+        self._check_coordinates()
+
+    def _check_coordinates(self) -> None:
+        if self.coordinates not in COORDINATES:
+            raise ParameterError(
+                f"plane coordinates must be one of {COORDINATES}; got {self.coordinates!r}."
+            )
+        try:
+            centre = tuple(float(c) for c in self.centre)
+        except (TypeError, ValueError):
+            centre = ()
+        if len(centre) != 2 or not all(np.isfinite(centre)):
+            raise ParameterError(f"plane centre must be two finite numbers; got {self.centre!r}.")
+        object.__setattr__(self, "centre", centre)
+        if self.coordinates == "values" and self.axes is None:
+            raise ParameterError(
+                'a plane whose coordinates are "values" must move two single parameters: '
+                "d1 and d2 must be unit coordinate vectors and the origin zero in those "
+                'two coordinates. Build it with axes_plane, or use coordinates="offsets".'
+            )
+        if self.coordinates == "offsets" and centre != (0.0, 0.0):
+            raise ParameterError(
+                "on a plane of offsets the centre is (0, 0), the origin itself; got "
+                f"{centre}. Move the origin instead (plane.with_origin(point))."
+            )
+
+    @property
+    def axes(self) -> tuple[int, int] | None:
+        """Indices of the two parameters an axes plane moves (None on other planes)."""
+        idx = []
+        for d in (self.d1, self.d2):
+            nz = np.flatnonzero(d)
+            if nz.size != 1 or d[nz[0]] != 1:
+                return None
+            idx.append(int(nz[0]))
+        if self.origin[idx[0]] != 0 or self.origin[idx[1]] != 0:
+            return None
+        return idx[0], idx[1]
 
     @property
     def size(self) -> int:
@@ -97,6 +168,11 @@ class Plane:
         """``(2, n)`` matrix P with ``(a, b) = P (theta - origin)`` (least squares)."""
         d = self.directions.astype(np.float64)
         return np.linalg.solve(self.gram, d).astype(self.origin.dtype)
+
+    @property
+    def centre_point(self) -> np.ndarray:
+        """The parameters at :attr:`centre`: the point the plane was built around."""
+        return self.lift(*self.centre)
 
     def lift(self, a: Any, b: Any) -> np.ndarray:
         """Parameters at plane coordinates ``(a, b)``; broadcasts, adds a last axis ``n``."""
@@ -123,13 +199,30 @@ class Plane:
         return ab[..., 0], ab[..., 1], np.linalg.norm(resid, axis=-1)
 
     def with_origin(self, origin: Any) -> Plane:
-        """The same directions through another origin."""
-        origin = np.asarray(origin, dtype=self.origin.dtype)
-        spec = dict(self.spec, origin=[float(x) for x in origin])
-        return Plane(origin, self.d1, self.d2, self.axis_titles, spec)
+        """The same directions through another point, which becomes the centre.
+
+        On an axes plane the coordinates stay parameter values (the new
+        centre is the point's two values); on other planes they become
+        offsets from the new point.
+        """
+        point = np.asarray(origin, dtype=self.origin.dtype)
+        spec = dict(self.spec, origin=[float(x) for x in point])
+        if self.coordinates == "values":
+            i, j = self.axes  # type: ignore[misc]
+            base = point.copy()
+            base[[i, j]] = 0
+            centre = (float(point[i]), float(point[j]))
+            return Plane(base, self.d1, self.d2, self.axis_titles, spec, centre, "values")
+        return Plane(point, self.d1, self.d2, self.axis_titles, spec)
 
 
-def _origin(problem: Problem, origin: Any) -> tuple[np.ndarray, list[float] | None]:
+def flat_origin(problem: Problem, origin: Any) -> tuple[np.ndarray, list[float] | None]:
+    """A plane's origin as a flat vector (the problem's parameters when None), and its spec entry.
+
+    Returns:
+        ``(flat, listed)``: the flat vector and, for Settings, the user's
+        origin as a list of floats (None when the default was used).
+    """
     if origin is None:
         return np.array(problem.theta0), None
     flat = problem.flatten(origin, what="plane origin")
@@ -145,9 +238,24 @@ def axes_plane(problem: Problem, x: str, y: str, *, origin: Any = None) -> Plane
         problem: the problem whose parameters are sliced.
         x, y: coordinate labels, e.g. ``"w[0]"`` and ``"b"`` (see ``problem.labels``).
         origin: parameters (pytree or flat) for the held coordinates and the
-            plane's ``(0, 0)``; defaults to the problem's parameters.
+            plane's centre; defaults to the problem's parameters.
 
-    Plane coordinates are then offsets of the two coordinates from the origin.
+    Plane coordinates are the values of ``x`` and ``y`` themselves: ``lift(a,
+    b)`` is the origin with ``x = a`` and ``y = b``, and the plane's
+    ``centre`` is the origin's values of ``x`` and ``y``. So a span ``s`` is
+    the square ``centre +- s``, and explicit ranges, grid starts, clicks,
+    ``Surface.a`` / ``b``, recorded paths and figure axes all read in
+    parameter values.
+
+    Examples:
+        >>> import jax.numpy as jnp
+        >>> from basinview.core import Problem
+        >>> prob = Problem(lambda p: p["x"] ** 2 + p["y"] ** 2, {"x": 3.0, "y": 2.0})
+        >>> plane = axes_plane(prob, "x", "y")
+        >>> plane.centre
+        (3.0, 2.0)
+        >>> plane.lift(1.0, -1.0).tolist()
+        [1.0, -1.0]
     """
     if x == y:
         raise ParameterError(
@@ -155,13 +263,16 @@ def axes_plane(problem: Problem, x: str, y: str, *, origin: Any = None) -> Plane
             "different labels from problem.labels."
         )
     i, j = problem.index(x), problem.index(y)
-    theta, origin_list = _origin(problem, origin)
+    theta, origin_list = flat_origin(problem, origin)
     d1 = np.zeros_like(theta)
     d2 = np.zeros_like(theta)
     d1[i] = 1
     d2[j] = 1
-    spec = {"kind": "axes", "x": x, "y": y, "origin": origin_list}
-    return Plane(theta, d1, d2, (x, y), spec)
+    base = np.array(theta, copy=True)
+    base[[i, j]] = 0
+    centre = (float(theta[i]), float(theta[j]))
+    spec = {"kind": "axes", "x": x, "y": y, "origin": origin_list, "coordinates": "values"}
+    return Plane(base, d1, d2, (x, y), spec, centre, "values")
 
 
 def _normalise(
@@ -227,6 +338,9 @@ def random_plane(
     to zero, as Li et al. do; models whose leaves are all vectors or scalars
     have no such distinction and every leaf is normalised as one filter.
 
+    Coordinates are offsets along the two directions from the origin (the
+    axis titles say so); ``(0, 0)`` is the origin.
+
     Caution: the origin's scale enters the directions; a leaf that is zero
     at the origin gets a zero direction under "filter" and "layer".
 
@@ -237,7 +351,7 @@ def random_plane(
     """
     if normalise not in NORMALISATIONS:
         raise ParameterError(f"normalise must be one of {NORMALISATIONS}; got {normalise!r}.")
-    theta, origin_list = _origin(problem, origin)
+    theta, origin_list = flat_origin(problem, origin)
     seed = _check_seed(seed)
     draws = np.random.default_rng(seed).standard_normal((2, problem.size))
     dirs = []
@@ -262,7 +376,7 @@ def random_plane(
         "origin": origin_list,
     }
     try:
-        return Plane(theta, dirs[0], dirs[1], ("direction 1", "direction 2"), spec)
+        return Plane(theta, dirs[0], dirs[1], _OFFSET_TITLES, spec)
     except ParameterError as exc:
         if normalise == "none":
             raise
@@ -281,7 +395,8 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     The origin is ``p0``; ``d1 = p1 - p0`` puts ``p1`` at ``(1, 0)``; ``d2``
     is the part of ``p2 - p0`` orthogonal to ``d1``, scaled to the length of
     ``d1``, so that distances are not distorted and ``p2`` lies at
-    ``(project(p2))`` with ``b > 0``.
+    ``(project(p2))`` with ``b > 0``. Coordinates are offsets from ``p0`` in
+    units of ``|p1 - p0|``.
     """
     pts = [
         problem.flatten(p, what=f"point p{i}").astype(np.float64)
@@ -301,24 +416,8 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     d2 = ortho / np.linalg.norm(ortho) * n1
     spec = {"kind": "through", "points": [[float(x) for x in p] for p in pts]}
     dtype = problem.dtype
-    return Plane(
-        pts[0].astype(dtype), d1.astype(dtype), d2.astype(dtype), ("towards p1", "towards p2"), spec
-    )
-
-
-def hessian_plane(
-    problem: Problem, *, origin: Any = None, method: str = "auto", seed: int = 0
-) -> Plane:
-    """The plane of the two top Hessian eigenvectors at ``origin``.
-
-    Along these directions the loss curves most steeply upward near the
-    origin, so this slice shows the directions that limit the step size.
-    ``method`` and ``seed`` are passed to
-    :func:`basinview.core.curvature.hessian_spectrum`.
-    """
-    from .curvature import hessian_plane_impl
-
-    return hessian_plane_impl(problem, origin=origin, method=method, seed=seed)
+    titles = ("offset towards p1", "offset towards p2")
+    return Plane(pts[0].astype(dtype), d1.astype(dtype), d2.astype(dtype), titles, spec)
 
 
 def _check_seed(seed: Any) -> int:
@@ -327,94 +426,3 @@ def _check_seed(seed: Any) -> int:
     return int(seed)
 
 
-_SPEC_KEYS = {
-    "axes": {"kind", "x", "y", "origin"},
-    "random": {"kind", "seed", "normalise", "zero_bias", "filter_axis", "origin"},
-    "through": {"kind", "points", "origin"},
-    "hessian": {"kind", "method", "seed", "origin"},
-}
-
-
-_REQUIRED = object()
-
-
-def _spec_error(what: str) -> ParameterError:
-    return ParameterError(
-        f"plane spec: {what} Rebuild the plane with axes_plane, random_plane, through_plane "
-        "or hessian_plane and use its .spec."
-    )
-
-
-def _spec_get(spec: dict[str, Any], key: str, kinds: tuple[type, ...], default: Any) -> Any:
-    if key not in spec:
-        if default is _REQUIRED:
-            raise _spec_error(f"the {spec.get('kind')!r} plane needs the field {key!r}.")
-        return default
-    value = spec[key]
-    if isinstance(value, bool) and bool not in kinds:
-        raise _spec_error(f"field {key!r} must be {kinds[0].__name__}; got {value!r}.")
-    if not isinstance(value, kinds):
-        raise _spec_error(f"field {key!r} must be {kinds[0].__name__}; got {type(value).__name__}.")
-    return value
-
-
-def _spec_vector(problem: Problem, value: Any, what: str) -> np.ndarray:
-    if not isinstance(value, (list, tuple, np.ndarray)):
-        raise _spec_error(f"{what} must be a list of {problem.size} numbers.")
-    try:
-        arr = np.asarray(value, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise _spec_error(f"{what} must be a list of {problem.size} numbers.") from None
-    if arr.shape != (problem.size,):
-        raise _spec_error(
-            f"{what} must be a list of {problem.size} numbers (one per parameter); got shape "
-            f"{arr.shape}."
-        )
-    return arr.astype(problem.dtype)
-
-
-def plane_from_spec(problem: Problem, spec: dict[str, Any]) -> Plane:
-    """Rebuild a plane from its ``spec`` (as stored in Settings).
-
-    The spec is data: every field is checked for its type before use, and
-    fields that the plane kind does not have are refused.
-    """
-    if not isinstance(spec, dict):
-        raise _spec_error(f"expected an object with a 'kind'; got {type(spec).__name__}.")
-    kind = spec.get("kind")
-    if kind not in _SPEC_KEYS:
-        raise ParameterError(
-            f"unknown plane kind {kind!r}; expected one of 'axes', 'random', 'through', "
-            "'hessian'. Rebuild the plane with one of those functions and use its .spec."
-        )
-    unknown = sorted(map(str, set(spec) - _SPEC_KEYS[kind]))
-    if unknown:
-        raise _spec_error(f"the {kind!r} plane has no fields {unknown}.")
-    origin = spec.get("origin")
-    origin = None if origin is None else _spec_vector(problem, origin, "'origin'")
-    if kind == "axes":
-        x = _spec_get(spec, "x", (str,), _REQUIRED)
-        y = _spec_get(spec, "y", (str,), _REQUIRED)
-        return axes_plane(problem, x, y, origin=origin)
-    if kind == "random":
-        return random_plane(
-            problem,
-            seed=_spec_get(spec, "seed", (int,), 0),
-            normalise=_spec_get(spec, "normalise", (str,), "filter"),
-            zero_bias=_spec_get(spec, "zero_bias", (bool,), True),
-            filter_axis=_spec_get(spec, "filter_axis", (int,), -1),
-            origin=origin,
-        )
-    if kind == "through":
-        raw = _spec_get(spec, "points", (list,), _REQUIRED)
-        if len(raw) != 3:
-            raise _spec_error("a 'through' plane needs exactly three points.")
-        pts = [_spec_vector(problem, p, f"point {i}") for i, p in enumerate(raw)]
-        plane = through_plane(problem, *pts)
-        return plane if origin is None else plane.with_origin(origin)
-    return hessian_plane(
-        problem,
-        origin=origin,
-        method=_spec_get(spec, "method", (str,), "auto"),
-        seed=_spec_get(spec, "seed", (int,), 0),
-    )

@@ -26,7 +26,8 @@ import numpy as np
 
 from .descent import Runs, descend
 from .errors import FingerprintWarning, ParameterError, SettingsError
-from .planes import Plane, plane_from_spec
+from .plane_specs import plane_from_spec, upgrade_record
+from .planes import Plane
 from .problem import Problem
 from .settings_json import MAX_SETTINGS_BYTES, SCHEMA_VERSION, fields_from_raw, parse
 from .starts import Starts, starts_from_spec
@@ -239,7 +240,7 @@ def record_settings(
         n_params=problem.size,
         dtype=str(problem.dtype),
         plane=json.loads(json.dumps(plane.spec)),
-        span=span_ranges(span),
+        span=span_ranges(span, plane.centre),
         resolution=_resolution(resolution),
         starts=json.loads(json.dumps(starts.spec)),
         optimizer=cfg["optimizer"],
@@ -287,6 +288,10 @@ def compute_view(
     """
     settings.check(problem)
     try:
+        plane_spec, span, starts_spec = upgrade_record(
+            problem, settings.plane, settings.span, settings.starts
+        )
+        settings = dataclasses.replace(settings, plane=plane_spec, span=span, starts=starts_spec)
         plane = plane_from_spec(problem, settings.plane)
     except ParameterError as exc:
         raise SettingsError(f"settings field 'plane' cannot be rebuilt: {exc}") from None

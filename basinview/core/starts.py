@@ -96,9 +96,18 @@ def _is_list_of_starts(problem: Problem, points: Sequence[Any]) -> bool:
 def grid_starts(plane: Plane, *, span: Any = 1.0, resolution: Any = 21) -> Starts:
     """A ``resolution`` grid of starts on ``plane`` over ``span`` (row-major in b, then a).
 
-    The grid coordinates are kept in ``spec`` so basin maps can be drawn.
+    ``span`` is read as by :func:`~basinview.core.evaluate_surface`: a
+    half-width around the plane's centre, or explicit ranges in plane
+    coordinates (parameter values on an axes plane). The grid's ranges are
+    kept in ``spec`` (as plane coordinates) so basin maps can be drawn.
+
+    Examples:
+        >>> from basinview.core import Problem, axes_plane
+        >>> prob = Problem(lambda p: p["x"] ** 2 + p["y"] ** 2, {"x": 3.0, "y": 2.0})
+        >>> grid_starts(axes_plane(prob, "x", "y"), span=1.0, resolution=3).points[:3].tolist()
+        [[2.0, 1.0], [3.0, 1.0], [4.0, 1.0]]
     """
-    (a0, a1), (b0, b1) = span_ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
     ra, rb = _resolution(resolution)
     if ra * rb > MAX_STARTS:
         raise ParameterError(

@@ -58,7 +58,8 @@ class Surface:
 
     Attributes:
         plane: the plane that was sliced.
-        a, b: grid coordinates along ``plane.d1`` and ``plane.d2``.
+        a, b: grid coordinates along ``plane.d1`` and ``plane.d2`` (parameter
+            values on an axes plane, offsets on other planes).
         loss: ``(len(b), len(a))`` array; ``loss[j, i]`` is the loss at
             ``plane.lift(a[i], b[j])``. Points where the loss is NaN or inf are
             NaN (gaps).
@@ -113,28 +114,45 @@ class Profile:
 
 
 _SPAN_FORMS = (
-    "span must be a number s (grid [-s, s]^2), a pair (sa, sb), or ((a_min, a_max), (b_min, b_max))"
+    "span must be a number s (grid centre +- s), a pair (sa, sb), or ((a_min, a_max), "
+    "(b_min, b_max))"
 )
 
 
-def span_ranges(span: Any) -> tuple[tuple[float, float], tuple[float, float]]:
-    """The ``((a_min, a_max), (b_min, b_max))`` ranges a span stands for, checked.
+def span_ranges(
+    span: Any, centre: Sequence[float] = (0.0, 0.0)
+) -> tuple[tuple[float, float], tuple[float, float]]:
+    """The ``((a_min, a_max), (b_min, b_max))`` plane coordinates a span stands for, checked.
+
+    A half-width ``s`` or a pair of half-widths ``(sa, sb)`` is taken around
+    ``centre`` (a plane's :attr:`~basinview.core.Plane.centre`: the two
+    parameters' values on an axes plane, ``(0, 0)`` on offset planes).
+    Explicit ranges are plane coordinates as they stand (parameter values
+    on an axes plane) and ignore ``centre``.
 
     >>> span_ranges(2.0)
     ((-2.0, 2.0), (-2.0, 2.0))
     >>> span_ranges((1.0, 3.0))
     ((-1.0, 1.0), (-3.0, 3.0))
-    >>> span_ranges(((0.0, 1.0), (-5.0, 5.0)))
+    >>> span_ranges(1.0, centre=(3.0, 2.0))
+    ((2.0, 4.0), (1.0, 3.0))
+    >>> span_ranges(((0.0, 1.0), (-5.0, 5.0)), centre=(3.0, 2.0))
     ((0.0, 1.0), (-5.0, 5.0))
     """
     try:
         arr = np.asarray(span, dtype=float)
     except (TypeError, ValueError) as exc:
         raise ParameterError(f"{_SPAN_FORMS}; got {span!r}.") from exc
+    try:
+        c = np.asarray(centre, dtype=float).reshape(2)
+    except (TypeError, ValueError) as exc:
+        raise ParameterError(f"the span's centre must be two numbers; got {centre!r}.") from exc
+    if not np.all(np.isfinite(c)):
+        raise ParameterError(f"the span's centre must be finite; got {c.tolist()}.")
     if arr.shape == ():
         arr = np.array([arr, arr])
     if arr.shape == (2,):
-        arr = np.array([[-arr[0], arr[0]], [-arr[1], arr[1]]])
+        arr = np.array([[c[0] - arr[0], c[0] + arr[0]], [c[1] - arr[1], c[1] + arr[1]]])
     if arr.shape != (2, 2):
         raise ParameterError(f"{_SPAN_FORMS}; got shape {arr.shape}.")
     if not np.all(np.isfinite(arr)) or np.any(arr[:, 1] <= arr[:, 0]):
@@ -316,8 +334,11 @@ def evaluate_surface(
     Args:
         problem: the problem.
         plane: the slice (see :mod:`basinview.core.planes`).
-        span: half-width ``s`` (grid ``[-s, s]^2``), half-widths ``(sa, sb)``,
-            or explicit ranges ``((a_min, a_max), (b_min, b_max))``.
+        span: half-width ``s`` (grid ``centre +- s`` with the plane's
+            ``centre``), half-widths ``(sa, sb)``, or explicit ranges
+            ``((a_min, a_max), (b_min, b_max))`` in plane coordinates (see
+            :func:`span_ranges`). On an axes plane all of these are
+            parameter values.
         resolution: points per axis (2 to 4001), or ``(ra, rb)``.
         chunk_size: loss evaluations vectorised at once; bounds memory.
             Default: chosen per problem (see :func:`evaluate_points`).
@@ -335,13 +356,16 @@ def evaluate_surface(
         >>> s = evaluate_surface(prob, axes_plane(prob, "x", "y"), span=1.0, resolution=3)
         >>> s.loss.tolist()
         [[4.0, 3.0, 4.0], [1.0, 0.0, 1.0], [4.0, 3.0, 4.0]]
+        >>> at = Problem(prob.loss, {"x": 5.0, "y": 0.0})  # centred at x = 5
+        >>> evaluate_surface(at, axes_plane(at, "x", "y"), span=1.0, resolution=3).a.tolist()
+        [4.0, 5.0, 6.0]
     """
     if plane.size != problem.size:
         raise ParameterError(
             f"the plane has {plane.size} coordinates but the problem has {problem.size}; "
             "build the plane from this problem."
         )
-    (a0, a1), (b0, b1) = span_ranges(span)
+    (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
     ra, rb = _resolution(resolution)
     a = np.linspace(a0, a1, ra)
     b = np.linspace(b0, b1, rb)

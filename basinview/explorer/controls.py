@@ -9,11 +9,12 @@ import math
 from typing import Any
 
 import ipywidgets as w
+import numpy as np
 
-from ..core import RULES, Problem, UpdateRule, get_rule
+from ..core import RULES, Problem, UpdateRule, get_rule, span_ranges
 from .state import PLANE_KINDS, ViewState
 
-__all__ = ["Controls", "hyper_control"]
+__all__ = ["Controls", "hyper_control", "respan", "view_centre"]
 
 _STYLE = {"description_width": "110px"}
 
@@ -56,10 +57,54 @@ def hyper_control(name: str, value: float) -> w.Widget:
     return w.FloatText(value=value, **common)
 
 
+def view_centre(problem: Problem, state: ViewState) -> tuple[float, float]:
+    """Plane coordinates of the view's centre (what the plane's ``centre`` will be).
+
+    On an axes plane: the values of the two coordinates at the origin (the
+    problem's parameters when the state has none); on other planes ``(0, 0)``.
+    Read off the state, so no plane is built.
+    """
+    if state.plane_kind != "axes":
+        return (0.0, 0.0)
+    labels = problem.labels
+    theta = problem.theta0 if state.origin is None else np.asarray(state.origin, dtype=float)
+    x = state.x_label or labels[0]
+    y = state.y_label or labels[min(1, len(labels) - 1)]
+    return float(theta[problem.index(x)]), float(theta[problem.index(y)])
+
+
+def respan(problem: Problem, old: ViewState, new: ViewState, span: Any = None) -> ViewState:
+    """``new`` with its span in plane coordinates.
+
+    A ``span`` given here (a half-width, half-widths or explicit ranges) is
+    read around ``new``'s centre, as :func:`~basinview.core.span_ranges` reads
+    it. Without one, ``new`` keeps ``old``'s span, moved with the centre when
+    the plane changed (another axis or origin): the view keeps its size and
+    its place relative to the centre.
+    """
+    centre = view_centre(problem, new)
+    if span is not None:
+        return new.replace(span=span_ranges(span, centre))
+    before = view_centre(problem, old)
+    da, db = centre[0] - before[0], centre[1] - before[1]
+    if da == 0 and db == 0:
+        return new
+    (a0, a1), (b0, b1) = new.span
+    return new.replace(span=((a0 + da, a1 + da), (b0 + db, b1 + db)))
+
+
+def _half_width(problem: Problem, state: ViewState) -> float:
+    """The span slider's value: the largest half-width of the span around the centre."""
+    ca, cb = view_centre(problem, state)
+    (a0, a1), (b0, b1) = state.span
+    return max(abs(a0 - ca), abs(a1 - ca), abs(b0 - cb), abs(b1 - cb))
+
+
 class Controls:
     """All Explorer controls, built from a ViewState and read back into one."""
 
     def __init__(self, problem: Problem, state: ViewState, rule: UpdateRule) -> None:
+        self._problem = problem
         labels = list(problem.labels)
         lr = state.learning_rate
         self.optimizer = w.Dropdown(
@@ -136,7 +181,7 @@ class Controls:
             layout=_wide(),
             style=_STYLE,
         )
-        half = max(abs(v) for pair in state.span for v in pair)
+        half = _half_width(problem, state)
         self.span = _log_slider("span (±)", half, min(half, 1e-3), max(half * 100, 10.0))
         self.resolution = w.IntSlider(
             value=state.resolution,
@@ -222,12 +267,8 @@ class Controls:
     def read(self, base: ViewState) -> ViewState:
         """The state the controls show (fields without a control come from ``base``)."""
         half = float(self.span.value)
-        span = (
-            base.span
-            if math.isclose(half, self._span_value, rel_tol=1e-12)
-            else ((-half, half), (-half, half))
-        )
-        return base.replace(
+        moved = not math.isclose(half, self._span_value, rel_tol=1e-12)
+        state = base.replace(
             optimizer=self.optimizer.value,
             learning_rate=float(self.learning_rate.value),
             hyper=self.hyper_values(),
@@ -240,9 +281,11 @@ class Controls:
             y_label=self.y_label.value,
             plane_seed=int(self.plane_seed.value),
             normalise=self.normalise.value,
-            span=span,
             resolution=int(self.resolution.value),
         )
+        # The slider is a half-width around the plane's centre (parameter values on an
+        # axes plane); without a move the span follows the centre to a new axis.
+        return respan(self._problem, base, state, half if moved else None)
 
     def show(self, state: ViewState) -> None:
         """Set every control to ``state`` (callers suspend their observers first)."""
@@ -265,7 +308,7 @@ class Controls:
             self.x_label.value = state.x_label
         if state.y_label:
             self.y_label.value = state.y_label
-        half = max(abs(v) for pair in state.span for v in pair)
+        half = _half_width(self._problem, state)
         self._span_value = half
         _set(self.span, half)
         self.update_visibility()

@@ -51,7 +51,8 @@ class ViewState:
         x_label, y_label: coordinates of an axes plane.
         plane_seed, normalise: seed and normalisation of a random plane.
         origin: flat origin of the plane, or None for the problem's parameters.
-        span: ``((a_min, a_max), (b_min, b_max))`` of the surface grid.
+        span: ``((a_min, a_max), (b_min, b_max))`` of the surface grid, in plane
+            coordinates (parameter values on an axes plane).
         resolution: grid points per axis.
         optimizer: update-rule name.
         learning_rate: step size.
@@ -135,6 +136,12 @@ def state_from_settings(settings: Settings, base: ViewState | None = None) -> Vi
         raise ParameterError(
             f"the Explorer shows axes, random and Hessian planes; these settings use a {kind!r} plane. "
             "Rebuild that view with basinview.core.compute_view instead."
+        )
+    if kind == "axes" and "coordinates" not in plane:
+        raise ParameterError(
+            "these settings were recorded when spans on axes planes were offsets from the "
+            "origin; convert them first with basinview.core.upgrade_record(problem, ...) "
+            "or open them with Explorer.from_settings(problem, settings), which does."
         )
     changes: dict[str, Any] = {
         "plane_kind": kind,

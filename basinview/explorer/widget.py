@@ -10,6 +10,7 @@ shown in the status line; the last good view stays.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import html
 import time
 import traceback
@@ -33,10 +34,10 @@ from ..core import (
     basin_map,
     get_rule,
     step_size_sweep,
+    upgrade_record,
 )
-from ..figures.slices import coordinate_shift
 from .compute import ViewComputer, ViewResults
-from .controls import Controls
+from .controls import Controls, respan
 from .records import SnapshotLog
 from .state import ViewState, default_span, state_from_settings
 from .sync import FigureView, source_uids, sync_figure
@@ -70,9 +71,6 @@ def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewStat
             x_label=kw.pop("x", labels[0]), y_label=kw.pop("y", labels[min(1, len(labels) - 1)])
         )
     span = kw.pop("span", None)
-    from .state import as_span
-
-    fields["span"] = as_span(span) if span is not None else default_span(problem, kind)
     origin = kw.get("origin")
     if origin is not None:
         if isinstance(origin, (tuple, list)) and all(
@@ -85,8 +83,17 @@ def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewStat
         fields["start_points"] = [problem.flatten(p, what="start") for p in starts]
     fields.update({k: v for k, v in kw.items()})
     state = ViewState(plane_kind=kind).replace(**fields)
+    # Spans are plane coordinates (parameter values on an axes plane): a half-width, or
+    # the default size, is taken around the plane's centre.
+    state = respan(problem, state, state, span if span is not None else _default_half(problem, kind))
     rule = get_rule(state.optimizer)
     return state.replace(optimizer=rule.name, hyper={**rule.defaults, **state.hyper_dict})
+
+
+def _default_half(problem: Problem, kind: str) -> tuple[float, float]:
+    """Half-widths of the first span (around the plane's centre)."""
+    (a0, a1), (b0, b1) = default_span(problem, kind)
+    return ((a1 - a0) / 2, (b1 - b0) / 2)
 
 
 class Explorer:
@@ -209,8 +216,19 @@ class Explorer:
         return self.computer.results
 
     def set(self, **changes: Any) -> None:
-        """Change the view programmatically (same path as moving the controls)."""
-        self._guard(lambda: self._apply(self.state.replace(**changes), show=True))
+        """Change the view programmatically (same path as moving the controls).
+
+        ``span`` is read as :func:`~basinview.core.evaluate_surface` reads it,
+        around the plane's centre (parameter values on an axes plane); without
+        it the span follows the centre when the plane changes.
+        """
+
+        def apply() -> None:
+            span = changes.pop("span", None)
+            state = respan(self.problem, self.state, self.state.replace(**changes), span)
+            self._apply(state, show=True)
+
+        self._guard(apply)
 
     def _on_control(self, change: dict[str, Any]) -> None:
         if self._quiet:
@@ -281,18 +299,18 @@ class Explorer:
     def _on_click(self, trace: Any, points: Any, selector: Any) -> None:
         if not points.point_inds:
             return
-        self._guard(lambda: self.add_start(points.xs[0], points.ys[0], shifted=True))
+        self._guard(lambda: self.add_start(points.xs[0], points.ys[0]))
 
-    def add_start(self, a: float, b: float, *, shifted: bool = False) -> None:
-        """Add a start at plane coordinates ``(a, b)`` (as drawn when ``shifted``)."""
+    def add_start(self, a: float, b: float) -> None:
+        """Add a start at plane coordinates ``(a, b)``, the numbers the map's axes show.
+
+        On an axes plane these are the two parameters' values; on other
+        planes, offsets along the plane's directions.
+        """
         results = self.results
         if results is None:
             return
-        plane = results.plane
-        if shifted:
-            sa, sb = coordinate_shift(plane)
-            a, b = a - sa, b - sb
-        point = plane.lift(float(a), float(b))
+        point = results.plane.lift(float(a), float(b))
         self._apply(self.state.replace(start_points=(*self.state.start_points, tuple(point))))
 
     # ------------------------------------------------------------ drawing
@@ -440,6 +458,10 @@ class Explorer:
             settings = Settings.load(settings, problem=problem)
         else:
             settings.check(problem)
+        plane_spec, span, starts_spec = upgrade_record(
+            problem, settings.plane, settings.span, settings.starts
+        )
+        settings = dataclasses.replace(settings, plane=plane_spec, span=span, starts=starts_spec)
         state = state_from_settings(settings)
         fields = {f: getattr(state, f) for f in state.__dataclass_fields__ if f != "plane_kind"}
         fields.update(options)

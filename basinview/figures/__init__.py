@@ -14,7 +14,7 @@ from .basins import basin_figure, profile_figure
 from .curves import REGIME_COLOURS, loss_curves_figure, step_size_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
-from .slices import coordinate_shift, relief_figure, slice_caution, slice_figure
+from .slices import relief_figure, slice_caution, slice_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
 
 __all__ = [
@@ -26,7 +26,6 @@ __all__ = [
     "Levels",
     "basin_figure",
     "choose_levels",
-    "coordinate_shift",
     "loss_curves_figure",
     "profile_figure",
     "relief_figure",

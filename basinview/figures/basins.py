@@ -11,7 +11,7 @@ from ..core.errors import ParameterError
 from ..core.surface import Profile, Surface
 from .build import FigureSpec
 from .levels import choose_levels
-from .overlays import add_critical_points, shift_traces
+from .overlays import add_critical_points
 from .slices import slice_caution
 from .style import DIVERGED, NOT_CONVERGED, add_note, base_layout, category_colour, uid
 
@@ -174,7 +174,6 @@ def basin_figure(
     fig.update_layout({"xaxis": xaxis, "yaxis": yaxis})
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
-    shift_traces(fig, plane)
     return fig.figure()
 
 

@@ -1,8 +1,9 @@
 """Drawing on a plane: descent paths, their ends and starts, critical points.
 
-Shared by the slice and basin figures. Plane coordinates ``(a, b)`` are
-offsets along the plane's directions; on a plane of two named coordinates
-:func:`coordinate_shift` turns them into the parameters' own values.
+Shared by the slice and basin figures. Everything is drawn at its plane
+coordinates ``(a, b)`` as the results hold them, with no shift: on an axes
+plane these are the two parameters' own values, on other planes offsets
+along the plane's directions (whose axis titles say so).
 """
 
 from __future__ import annotations
@@ -23,8 +24,6 @@ __all__ = [
     "add_critical_points",
     "add_paths",
     "check_runs_plane",
-    "coordinate_shift",
-    "shift_traces",
 ]
 
 PATH_HOVER = (
@@ -51,40 +50,6 @@ def check_runs_plane(runs: Runs, plane: Plane) -> None:
             "the runs were recorded on another plane than the surface's, so their paths "
             "cannot be drawn on it. Run descend(..., plane=surface.plane)."
         )
-
-
-def coordinate_shift(plane: Plane) -> tuple[float, float]:
-    """Offsets that turn plane coordinates into parameter values, for axes planes.
-
-    On a plane of two named coordinates, ``a`` and ``b`` are offsets from the
-    origin; adding the origin's values makes the axes read in the
-    parameters' own values. Other planes have no such reading: ``(0, 0)``.
-    """
-    if plane.spec.get("kind") != "axes":
-        return 0.0, 0.0
-    i = int(np.argmax(np.abs(plane.d1)))
-    j = int(np.argmax(np.abs(plane.d2)))
-    return float(plane.origin[i]), float(plane.origin[j])
-
-
-def shift_traces(fig: FigureSpec, plane: Plane) -> None:
-    """Move every trace and axis range of ``fig`` by :func:`coordinate_shift`."""
-    sa, sb = coordinate_shift(plane)
-    if sa == 0 and sb == 0:
-        return
-    for trace in fig.data:
-        for key, shift in (("x", sa), ("y", sb)):
-            values = trace.get(key)
-            if values is not None:
-                moved = np.asarray(values, dtype=np.float64) + shift
-                # an axis that does not move keeps its values (and dtype), as plotly
-                # keeps a property set to an equal value
-                if not np.array_equal(values, moved):
-                    trace[key] = moved
-    for axis, shift in (("xaxis", sa), ("yaxis", sb)):
-        bounds = fig.layout.get(axis, {}).get("range")
-        if bounds is not None:
-            fig.layout[axis]["range"] = [v + shift for v in bounds]
 
 
 def _end_points(runs: Runs, group: PathGroup, bounds: tuple[float, float, float, float]):

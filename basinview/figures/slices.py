@@ -23,13 +23,11 @@ from .overlays import (
     add_critical_points,
     add_paths,
     check_runs_plane,
-    coordinate_shift,
-    shift_traces,
 )
 from .paths import colour_note, group_runs, select_runs, stack_paths
 from .style import SURFACE_SCALE, add_note, base_layout, colour_scale, uid
 
-__all__ = ["coordinate_shift", "relief_figure", "slice_caution", "slice_figure"]
+__all__ = ["relief_figure", "slice_caution", "slice_figure"]
 
 
 def slice_caution(plane: Plane, runs: Runs | None = None, drawn: np.ndarray | None = None) -> str:
@@ -170,7 +168,6 @@ def slice_figure(
     fig.update_layout({"xaxis": xaxis, "yaxis": yaxis})
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
-    shift_traces(fig, plane)
     return fig.figure()
 
 
@@ -284,7 +281,6 @@ def relief_figure(
     fig.update_layout({"scene": scene})
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
-    shift_traces(fig, plane)
     return fig.figure()
 
 
