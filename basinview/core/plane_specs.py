@@ -108,9 +108,7 @@ def plane_from_spec(problem: Problem, spec: dict[str, Any]) -> Plane:
                 "with upgrade_record(problem, plane_spec, span, starts_spec)."
             )
         if coordinates not in (None, "values"):
-            raise _spec_error(
-                f"an axes plane's 'coordinates' is 'values'; got {coordinates!r}."
-            )
+            raise _spec_error(f"an axes plane's 'coordinates' is 'values'; got {coordinates!r}.")
         return plane
     if kind == "random":
         return random_plane(

@@ -380,7 +380,11 @@ def random_plane(
     except ParameterError as exc:
         if normalise == "none":
             raise
-        zero = [leaf.name for leaf in problem.flattener.leaves if not np.any(theta[leaf.start : leaf.stop])]
+        zero = [
+            leaf.name
+            for leaf in problem.flattener.leaves
+            if not np.any(theta[leaf.start : leaf.stop])
+        ]
         where = f" (zero at the origin: {zero[:8]})" if zero else ""
         raise ParameterError(
             f"{exc} normalise={normalise!r} gives each leaf the size of the origin's leaf, so "
@@ -424,5 +428,3 @@ def _check_seed(seed: Any) -> int:
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise ParameterError(f"seed must be a non-negative integer; got {seed!r}.")
     return int(seed)
-
-

@@ -85,7 +85,9 @@ def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewStat
     state = ViewState(plane_kind=kind).replace(**fields)
     # Spans are plane coordinates (parameter values on an axes plane): a half-width, or
     # the default size, is taken around the plane's centre.
-    state = respan(problem, state, state, span if span is not None else _default_half(problem, kind))
+    state = respan(
+        problem, state, state, span if span is not None else _default_half(problem, kind)
+    )
     rule = get_rule(state.optimizer)
     return state.replace(optimizer=rule.name, hyper={**rule.defaults, **state.hyper_dict})
 
