@@ -18,7 +18,7 @@ import pytest
 
 from basinview import core
 from basinview import figures as F
-from basinview.explorer import Explorer
+from basinview.explorer import Explorer, state_from_settings
 
 from .conftest import himmelblau
 
@@ -339,3 +339,21 @@ def test_core_modules_import_each_other_without_a_cycle():
 
     for mod in sorted(graph):
         visit(mod, [])
+
+
+def test_explorer_opens_old_and_new_records_at_the_recorded_points():
+    prob = core.Problem(himmelblau_and_z, {"x": 3.0, "y": 2.0, "z": 1.0})
+    ex = Explorer(prob, x="x", y="y", span=0.5, resolution=7, steps=10, n_starts=2)
+    settings = ex.record()
+    assert settings.span == ((2.5, 3.5), (1.5, 2.5))
+    again = Explorer.from_settings(prob, settings)
+    assert again.state.span == settings.span
+    old = json.loads(settings.to_json())
+    del old["plane"]["coordinates"]
+    old["span"] = [[-0.5, 0.5], [-0.5, 0.5]]  # offsets from the origin's x = 3, y = 2
+    legacy = core.Settings.from_json(json.dumps(old))
+    with pytest.raises(core.ParameterError, match="upgrade_record"):
+        state_from_settings(legacy)
+    opened = Explorer.from_settings(prob, legacy)
+    assert opened.state.span == settings.span
+    np.testing.assert_allclose(opened.results.surface.a, ex.results.surface.a)
