@@ -26,7 +26,7 @@ import plotly.graph_objects as go
 import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
-from . import __version__
+from ._version import __version__
 from . import figures as F
 from .core.errors import BasinviewError
 

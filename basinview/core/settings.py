@@ -24,6 +24,7 @@ from typing import Any
 
 import numpy as np
 
+from .._version import __version__
 from .descent import Runs, descend
 from .errors import FingerprintWarning, ParameterError, SettingsError
 from .planes import Plane, plane_from_spec
@@ -47,8 +48,6 @@ def library_versions() -> dict[str, str]:
     import jax
     import optax
     import pandas
-
-    from .. import __version__
 
     return {
         "basinview": __version__,
