@@ -12,7 +12,6 @@ import importlib
 from typing import Any
 
 from ._version import __version__
-
 from .core import *  # noqa: F403
 from .core import __all__ as _core_all
 

@@ -1,10 +1,24 @@
 """basinview.core: the engine (JAX, NumPy, optax, pandas; no plotting, no widgets).
 
 Data flow: :class:`Problem` -> :class:`Plane` -> surfaces, descent runs,
-minima and curvature -> result objects (NumPy arrays and pandas tables).
+minima and curvature -> result objects (NumPy arrays and pandas tables) ->
+one :class:`Analysis` per view (:func:`analyse`).
 """
 
 from ._tuning import bucket, chunk_size_for, count_compilations
+from .analysis import (
+    Analysis,
+    View,
+    ViewSpec,
+    analyse,
+    compute_basins,
+    compute_minima,
+    compute_profile,
+    compute_runs,
+    compute_surface,
+    compute_sweep,
+    compute_view,
+)
 from .curvature import (
     Spectrum,
     adaptive_threshold,
@@ -51,7 +65,7 @@ from .optimizers import (
 )
 from .planes import Plane, axes_plane, hessian_plane, plane_from_spec, random_plane, through_plane
 from .problem import Problem
-from .settings import SCHEMA_VERSION, Settings, View, compute_view, record_settings
+from .settings import SCHEMA_VERSION, Settings, library_versions, record_settings
 from .sharding import use_all_cores
 from .starts import (
     Starts,
@@ -84,6 +98,7 @@ __all__ = [
     "SCHEMA_VERSION",
     "SEQUENTIAL",
     "STATUSES",
+    "Analysis",
     "BasinMap",
     "BasinviewError",
     "CriticalPoint",
@@ -103,13 +118,21 @@ __all__ = [
     "Surface",
     "UpdateRule",
     "View",
+    "ViewSpec",
     "adaptive_threshold",
+    "analyse",
     "axes_plane",
     "basin_map",
     "bucket",
     "chunk_size_for",
     "classify",
     "combine_starts",
+    "compute_basins",
+    "compute_minima",
+    "compute_profile",
+    "compute_runs",
+    "compute_surface",
+    "compute_sweep",
     "compute_view",
     "count_compilations",
     "default_plane",
@@ -126,6 +149,7 @@ __all__ = [
     "hessian_plane",
     "hessian_spectrum",
     "initializer_starts",
+    "library_versions",
     "optax_rule",
     "optimal_fixed_step",
     "plane_from_spec",
