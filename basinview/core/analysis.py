@@ -50,6 +50,8 @@ __all__ = [
     "compute_surface",
     "compute_sweep",
     "compute_view",
+    "record_view",
+    "sweep_rates_around_bound",
 ]
 
 Span = tuple[tuple[float, float], tuple[float, float]]
