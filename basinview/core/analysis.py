@@ -422,6 +422,19 @@ def analyse(
 
     Returns:
         An :class:`Analysis` whose ``settings`` reproduce the view.
+
+    Example:
+        >>> import numpy as np
+        >>> from basinview.core import Problem, ViewSpec, analyse, axes_plane, explicit_starts
+        >>> problem = Problem(lambda p: (p["x"] ** 2 - 1) ** 2 + p["y"] ** 2, {"x": 0.5, "y": 0.5})
+        >>> starts = explicit_starts(problem, np.array([[0.5, 0.5], [-0.5, 0.2]], np.float32))
+        >>> view = ViewSpec(plane=axes_plane(problem, "x", "y"), starts=starts, span=1.5,
+        ...                 resolution=21, learning_rate=0.1, steps=300)
+        >>> result = analyse(problem, view)
+        >>> sorted(round(float(x), 2) for x in result.minima.points[:, 0])
+        [-1.0, 1.0]
+        >>> round(float(result.profile.barrier), 2)
+        1.0
     """
     recorded: Settings | None = None
     if isinstance(view, Settings):
