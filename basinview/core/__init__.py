@@ -9,7 +9,6 @@ from ._tuning import bucket, chunk_size_for, count_compilations
 from .analysis import (
     Analysis,
     View,
-    ViewSpec,
     analyse,
     compute_basins,
     compute_minima,
@@ -85,6 +84,7 @@ from .surface import (
     segment_profile,
     span_ranges,
 )
+from .view import ViewSpec
 
 __all__ = [
     "ADAM",
