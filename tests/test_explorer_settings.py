@@ -127,6 +127,9 @@ def test_moving_a_rate_returns_to_one_setting_other_controls_keep_the_grid(probl
     np.testing.assert_allclose(runs.hyper["learning_rate"], 0.004, rtol=1e-6)
     assert len(runs) == 4
     assert explorer.record().learning_rate == (pytest.approx(0.004),)
+    # a rate given to from_settings replaces the recorded grid as well
+    chosen = Explorer.from_settings(problem, grid_settings, learning_rate=0.003)
+    assert chosen.state.grid == () and len(chosen.results.runs) == 5
 
 
 def test_starts_the_controls_cannot_describe_become_clicked_starts(problem):

@@ -430,5 +430,7 @@ class Explorer:
             settings.check(problem)
         state = state_from_settings(settings, problem=problem)
         fields = {f: getattr(state, f) for f in state.__dataclass_fields__ if f != "plane_kind"}
+        if {"learning_rate", "hyper", "optimizer"} & set(options) and "grid" not in options:
+            fields["grid"] = ()  # a rate or rule given here replaces the recorded grid
         fields.update(options)
         return cls(problem, state.plane_kind, **fields)
