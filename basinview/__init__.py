@@ -11,8 +11,7 @@ from __future__ import annotations
 import importlib
 from typing import Any
 
-__version__ = "0.1.0"
-
+from ._version import __version__
 from .core import *  # noqa: F403
 from .core import __all__ as _core_all
 

@@ -1,7 +1,8 @@
 """A standalone, offline HTML report of an analysis.
 
-:func:`write_report` turns results (surface, runs, minima, basin map,
-step-size sweep, profile, settings) into one HTML file: a short summary
+:func:`write_report` turns one :class:`~basinview.core.Analysis` (surface,
+runs, minima, basin map, step-size sweep, profile, settings; built by
+:func:`~basinview.core.analyse`) into one HTML file: a short summary
 with the slice caution at the top, every figure, the tables, and the
 recorded settings as JSON. plotly.js is embedded once, inline, so the file
 opens without a network connection; nothing else is loaded.
@@ -26,8 +27,9 @@ import plotly.graph_objects as go
 import plotly.io as pio
 from plotly.offline import get_plotlyjs
 
-from . import __version__
 from . import figures as F
+from ._version import __version__
+from .core.analysis import Analysis
 from .core.errors import BasinviewError
 
 __all__ = [
@@ -76,23 +78,18 @@ def _fmt(x: Any, digits: int = 4) -> str:
     return f"{v:.{digits}g}" if np.isfinite(v) else str(v)
 
 
-def summary_lines(
-    *,
-    surface: Any = None,
-    runs: Any = None,
-    minima: Any = None,
-    basin_map: Any = None,
-    sweep: Any = None,
-    profile: Any = None,
-    settings: Any = None,
-) -> tuple[list[str], str]:
-    """Plain-text summary of the results and the slice caution.
+def summary_lines(analysis: Analysis) -> tuple[list[str], str]:
+    """Plain-text summary of an analysis and the slice caution.
 
     Returns:
         ``(lines, caution)``: one sentence per result, and the caution text.
     """
+    _check_analysis(analysis)
+    surface, runs, minima = analysis.surface, analysis.runs, analysis.minima
+    basin_map, sweep, profile = analysis.basin_map, analysis.sweep, analysis.profile
+    settings = analysis.settings
     lines: list[str] = []
-    plane = surface.plane if surface is not None else getattr(runs, "plane", None)
+    plane = analysis.plane
     if settings is not None:
         lines.append(
             f"Loss {settings.loss_name} with {settings.n_params} parameters ({settings.dtype}); "
@@ -118,7 +115,7 @@ def summary_lines(
             for lab, kind, loss, share in zip(minima.labels, minima.kind, minima.loss, minima.share)
         ]
         lines.append(f"Critical points reached: {'; '.join(parts)}.")
-    elif minima is not None:
+    elif runs is not None and not np.any(np.asarray(runs.status) == "converged"):
         lines.append("No run converged, so no critical point was found.")
     if basin_map is not None:
         shares = basin_map.shares
@@ -150,6 +147,14 @@ def summary_lines(
             "still cover only the span shown, and minima outside it are not seen."
         )
     return lines, caution
+
+
+def _check_analysis(analysis: Any) -> None:
+    if not isinstance(analysis, Analysis):
+        raise ReportError(
+            f"a report is made from one Analysis; got {type(analysis).__name__}. Build it with "
+            "basinview.core.analyse(problem, view), or Analysis(surface=..., runs=..., ...)."
+        )
 
 
 def _table(frame: pd.DataFrame, caption: str) -> str:
@@ -198,30 +203,18 @@ def _settings_text(settings: Any) -> str:
 
 
 def report_html(
+    analysis: Analysis,
     *,
-    surface: Any = None,
-    runs: Any = None,
-    minima: Any = None,
-    basin_map: Any = None,
-    sweep: Any = None,
-    profile: Any = None,
-    settings: Any = None,
     figures: Mapping[str, go.Figure] | None = None,
     title: str = "basinview report",
     description: str = "",
-    profile_labels: tuple[str, str] | None = None,
     sweep_y: str = "steps",
 ) -> str:
-    """The report as HTML text (see :func:`write_report`)."""
-    lines, caution = summary_lines(
-        surface=surface,
-        runs=runs,
-        minima=minima,
-        basin_map=basin_map,
-        sweep=sweep,
-        profile=profile,
-        settings=settings,
-    )
+    """The report of ``analysis`` as HTML text (see :func:`write_report`)."""
+    lines, caution = summary_lines(analysis)
+    surface, runs, minima = analysis.surface, analysis.runs, analysis.minima
+    basin_map, sweep, profile = analysis.basin_map, analysis.sweep, analysis.profile
+    settings, profile_labels = analysis.settings, analysis.profile_labels
     sections: list[str] = []
 
     def figure(key: str, heading: str, fig: go.Figure, caption: str, height: int = 620) -> None:
@@ -359,38 +352,26 @@ def check_report_path(path: str | os.PathLike[str], overwrite: bool = False) -> 
 
 def write_report(
     path: str | os.PathLike[str],
+    analysis: Analysis,
     *,
-    surface: Any = None,
-    runs: Any = None,
-    minima: Any = None,
-    basin_map: Any = None,
-    sweep: Any = None,
-    profile: Any = None,
-    settings: Any = None,
     figures: Mapping[str, go.Figure] | None = None,
     title: str = "basinview report",
     description: str = "",
-    profile_labels: tuple[str, str] | None = None,
     sweep_y: str = "steps",
     overwrite: bool = False,
 ) -> Path:
-    """Write a standalone HTML report of the results to ``path`` (and nowhere else).
+    """Write a standalone HTML report of ``analysis`` to ``path`` (and nowhere else).
 
     Args:
         path: the file to write; must end in ``.html`` (or ``.htm``) and its
             folder must exist. An existing basinview report there is replaced;
             any other existing file is refused unless ``overwrite=True``.
-        surface: :class:`~basinview.core.Surface` (slice and relief figures).
-        runs: :class:`~basinview.core.Runs` on ``surface.plane`` (paths, loss
-            curves, runs table).
-        minima: :class:`~basinview.core.Minima` of ``runs`` (colours, table).
-        basin_map: :class:`~basinview.core.BasinMap` (basin figure, shares).
-        sweep: :class:`~basinview.core.StepSizeSweep` (step-size figure, table).
-        profile: :class:`~basinview.core.Profile` between two points.
-        settings: :class:`~basinview.core.Settings` (shown as JSON).
+        analysis: the :class:`~basinview.core.Analysis` of one view (from
+            :func:`~basinview.core.analyse`, or built from parts: each of its
+            surface, runs, minima, basin map, sweep, profile and settings that
+            is present gets its figure, table or section).
         figures: extra plotly figures, by heading.
         title, description: heading and a sentence under it.
-        profile_labels: names of the profile's two ends (e.g. ``("A", "B")``).
         sweep_y: ``"steps"`` or ``"final_loss"`` for the step-size figure.
         overwrite: replace an existing file that is not a basinview report.
 
@@ -402,18 +383,7 @@ def write_report(
     """
     target = check_report_path(path, overwrite)
     text = report_html(
-        surface=surface,
-        runs=runs,
-        minima=minima,
-        basin_map=basin_map,
-        sweep=sweep,
-        profile=profile,
-        settings=settings,
-        figures=figures,
-        title=title,
-        description=description,
-        profile_labels=profile_labels,
-        sweep_y=sweep_y,
+        analysis, figures=figures, title=title, description=description, sweep_y=sweep_y
     )
     try:
         target.write_text(text, encoding="utf-8")

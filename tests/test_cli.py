@@ -228,3 +228,120 @@ def test_loaders_read_nested_json_and_ordered_npz(tmp_path):
     assert [int(a[0]) for a in data] == list(range(12))
     picked = load_data(str(tmp_path / "d.npz"), "arr_3,arr_1")
     assert [int(a[0]) for a in picked] == [3, 1]
+
+
+LINEAR = textwrap.dedent(
+    """
+    import jax.numpy as jnp
+
+    def loss(params, x, y):
+        return jnp.mean((x @ params["w"] + params["b"] - y) ** 2)
+    """
+)
+
+
+@pytest.fixture
+def zero_dir(tmp_path, monkeypatch):
+    """A linear model of three features whose starting weights are all zero."""
+    name = f"zeromodel_{tmp_path.name.replace('-', '_')}"
+    (tmp_path / f"{name}.py").write_text(LINEAR)
+    (tmp_path / "zeros.json").write_text(json.dumps({"w": [0.0, 0.0, 0.0], "b": 0.0}))
+    (tmp_path / "near.json").write_text(json.dumps({"w": [0.5, -1.0, 0.2], "b": 0.1}))
+    rng = np.random.default_rng(3)
+    x = rng.standard_normal((40, 3))
+    y = x @ np.array([1.0, -2.0, 0.5]) + 0.3 + 0.05 * rng.standard_normal(40)
+    np.savez(tmp_path / "data.npz", x=x, y=y)
+    monkeypatch.chdir(tmp_path)
+    return tmp_path, name, x, y
+
+
+def _zero_report(name, *extra):
+    return [
+        "report",
+        f"{name}:loss",
+        "--params",
+        "zeros.json",
+        "--data",
+        "data.npz",
+        "--learning-rate",
+        "0.2",
+        "--steps",
+        "600",
+        "--starts",
+        "3",
+        "--resolution",
+        "11",
+        "--basin-resolution",
+        "0",
+        "--sweep-rates",
+        "0",
+        *extra,
+    ]
+
+
+def _recorded_plane(page):
+    import html
+    import re
+
+    from basinview.core import Settings
+
+    pre = re.search(r"<pre class='settings' id='bv-settings'>(.*?)</pre>", page, re.S)
+    return Settings.from_json(html.unescape(pre.group(1))).plane
+
+
+def test_report_on_all_zero_weights_falls_back_and_says_so(zero_dir, capsys):
+    folder, name, x, y = zero_dir
+    code = main(_zero_report(name, "--out", "zero.html"))
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    out = captured.out
+    assert "Note: the default filter-normalised random plane cannot be drawn here" in out
+    assert "--normalise filter|layer|none" in out
+    # Source: numpy.linalg.lstsq, the least-squares solution (reference library).
+    design = np.column_stack([np.ones(len(x)), x])
+    b_ref, *w_ref = np.linalg.lstsq(design, y, rcond=None)[0]
+    lines = out.splitlines()
+    row = [
+        float(v) for v in lines[lines.index("Where converged runs ended (rounded):") + 2].split()
+    ]
+    # labels sort as b, w[0], w[1], w[2]
+    np.testing.assert_allclose(row[:4], [b_ref, *w_ref], atol=0.006)
+    page = (folder / "zero.html").read_text(encoding="utf-8")
+    assert page.startswith(MARKER) and "raw Gaussian directions" in page
+    assert _recorded_plane(page)["normalise"] == "none"
+
+
+def test_report_normalise_and_origin_options(zero_dir, capsys):
+    folder, name, _, _ = zero_dir
+    for choice in ("filter", "layer"):
+        expect_bad(
+            _zero_report(name, "--normalise", choice, "--out", "z.html"),
+            capsys,
+            f"--normalise {choice}: normalise='{choice}' scales each direction",
+        )
+    assert not (folder / "z.html").exists()
+    code = main(_zero_report(name, "--normalise", "none", "--out", "none.html"))
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    assert "Note:" not in captured.out
+    # a filter-normalised plane through other (non-zero) weights
+    code = main(_zero_report(name, "--origin", "near.json", "--out", "near.html"))
+    captured = capsys.readouterr()
+    assert code == 0, captured.err
+    assert "Note:" not in captured.out
+    plane = _recorded_plane((folder / "near.html").read_text(encoding="utf-8"))
+    assert plane["normalise"] == "filter"
+    # the recorded origin is the --origin file's weights (flat order b, w[0], w[1], w[2])
+    np.testing.assert_allclose(plane["origin"], [0.1, 0.5, -1.0, 0.2], rtol=1e-6)
+    (folder / "short.json").write_text(json.dumps({"w": [1.0, 2.0], "b": 0.0}))
+    expect_bad(_zero_report(name, "--origin", "short.json", "--out", "z.html"), capsys, "origin")
+    expect_bad(
+        _zero_report(name, "--plane", "b,w[0]", "--normalise", "none", "--out", "z.html"),
+        capsys,
+        "Drop one of the two options",
+    )
+    with pytest.raises(SystemExit) as exit_info:  # argparse's own usage error
+        main(_zero_report(name, "--normalise", "unit", "--out", "z.html"))
+    assert exit_info.value.code == 2
+    assert "invalid choice: 'unit'" in capsys.readouterr().err
+    assert not (folder / "z.html").exists()

@@ -1,10 +1,23 @@
 """basinview.core: the engine (JAX, NumPy, optax, pandas; no plotting, no widgets).
 
 Data flow: :class:`Problem` -> :class:`Plane` -> surfaces, descent runs,
-minima and curvature -> result objects (NumPy arrays and pandas tables).
+minima and curvature -> result objects (NumPy arrays and pandas tables) ->
+one :class:`Analysis` per view (:func:`analyse`).
 """
 
 from ._tuning import bucket, chunk_size_for, count_compilations
+from .analysis import (
+    Analysis,
+    View,
+    analyse,
+    compute_basins,
+    compute_minima,
+    compute_profile,
+    compute_runs,
+    compute_surface,
+    compute_sweep,
+    compute_view,
+)
 from .curvature import (
     Spectrum,
     adaptive_threshold,
@@ -53,7 +66,7 @@ from .optimizers import (
 from .plane_specs import plane_from_spec, upgrade_record
 from .planes import Plane, axes_plane, random_plane, through_plane
 from .problem import Problem
-from .settings import SCHEMA_VERSION, Settings, View, compute_view, record_settings
+from .settings import SCHEMA_VERSION, Settings, library_versions, record_settings
 from .sharding import use_all_cores
 from .starts import (
     Starts,
@@ -73,6 +86,7 @@ from .surface import (
     segment_profile,
     span_ranges,
 )
+from .view import ViewSpec, upgrade_settings
 
 __all__ = [
     "ADAM",
@@ -86,6 +100,7 @@ __all__ = [
     "SCHEMA_VERSION",
     "SEQUENTIAL",
     "STATUSES",
+    "Analysis",
     "BasinMap",
     "BasinviewError",
     "CriticalPoint",
@@ -105,13 +120,21 @@ __all__ = [
     "Surface",
     "UpdateRule",
     "View",
+    "ViewSpec",
     "adaptive_threshold",
+    "analyse",
     "axes_plane",
     "basin_map",
     "bucket",
     "chunk_size_for",
     "classify",
     "combine_starts",
+    "compute_basins",
+    "compute_minima",
+    "compute_profile",
+    "compute_runs",
+    "compute_surface",
+    "compute_sweep",
     "compute_view",
     "count_compilations",
     "default_plane",
@@ -128,6 +151,7 @@ __all__ = [
     "hessian_plane",
     "hessian_spectrum",
     "initializer_starts",
+    "library_versions",
     "optax_rule",
     "optimal_fixed_step",
     "plane_from_spec",
@@ -147,5 +171,6 @@ __all__ = [
     "step_size_sweep",
     "through_plane",
     "upgrade_record",
+    "upgrade_settings",
     "use_all_cores",
 ]

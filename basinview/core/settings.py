@@ -1,5 +1,7 @@
 """Settings: a frozen, JSON-only record of everything needed to reproduce a view.
 
+:func:`~basinview.core.analysis.compute_view` (in :mod:`.analysis`) rebuilds the view.
+
 A :class:`Settings` holds the plane, span and resolution of the slice, the
 starts, the optimiser and its hyper-parameters, learning rates, step budget,
 tolerances and seeds, plus the loss's qualified name, a fingerprint of the
@@ -17,27 +19,24 @@ import os
 import platform
 import tempfile
 import warnings
-from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from .descent import Runs, descend
-from .errors import FingerprintWarning, ParameterError, SettingsError
-from .plane_specs import plane_from_spec, upgrade_record
+from .._version import __version__
+from .descent import Runs
+from .errors import FingerprintWarning, SettingsError
 from .planes import Plane
 from .problem import Problem
 from .settings_json import MAX_SETTINGS_BYTES, SCHEMA_VERSION, fields_from_raw, parse
-from .starts import Starts, starts_from_spec
-from .surface import Surface, _resolution, evaluate_surface, span_ranges
+from .starts import Starts
+from .surface import _resolution, span_ranges
 
 __all__ = [
     "SCHEMA_VERSION",
     "Settings",
-    "View",
-    "compute_view",
     "library_versions",
     "record_settings",
 ]
@@ -48,8 +47,6 @@ def library_versions() -> dict[str, str]:
     import jax
     import optax
     import pandas
-
-    from .. import __version__
 
     return {
         "basinview": __version__,
@@ -256,62 +253,3 @@ def record_settings(
         created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         versions=library_versions(),
     )
-
-
-@dataclass(frozen=True, eq=False)
-class View:
-    """A computed view: the plane, the surface on it, the starts and the runs."""
-
-    settings: Settings
-    plane: Plane
-    surface: Surface
-    starts: Starts
-    runs: Runs
-
-
-def compute_view(
-    problem: Problem,
-    settings: Settings,
-    *,
-    optimizer: Any = None,
-    initializers: dict[str, Callable[[Any], Any]] | None = None,
-) -> View:
-    """Recompute the view that ``settings`` describe, on ``problem``.
-
-    Args:
-        problem: the problem (warns if its fingerprint differs from the record).
-        settings: the record.
-        optimizer: the update rule object when the record names a custom
-            (optax) rule; built-in rules are found by name.
-        initializers: initialiser functions by name, when the starts came
-            from one.
-    """
-    settings.check(problem)
-    try:
-        plane_spec, span, starts_spec = upgrade_record(
-            problem, settings.plane, settings.span, settings.starts
-        )
-        settings = dataclasses.replace(settings, plane=plane_spec, span=span, starts=starts_spec)
-        plane = plane_from_spec(problem, settings.plane)
-    except ParameterError as exc:
-        raise SettingsError(f"settings field 'plane' cannot be rebuilt: {exc}") from None
-    surface = evaluate_surface(problem, plane, span=settings.span, resolution=settings.resolution)
-    try:
-        starts = starts_from_spec(problem, settings.starts, plane=plane, initializers=initializers)
-    except ParameterError as exc:
-        raise SettingsError(f"settings field 'starts' cannot be rebuilt: {exc}") from None
-    runs = descend(
-        problem,
-        starts,
-        optimizer=optimizer if optimizer is not None else settings.optimizer,
-        learning_rate=list(settings.learning_rate),
-        hyper={k: list(v) for k, v in settings.hyper.items()},
-        steps=settings.steps,
-        plane=plane,
-        grad_tol=settings.grad_tol,
-        loss_tol=settings.loss_tol,
-        divergence_factor=settings.divergence_factor,
-        batch_size=settings.batch_size,
-        seed=settings.seed,
-    )
-    return View(settings=settings, plane=plane, surface=surface, starts=starts, runs=runs)

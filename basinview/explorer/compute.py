@@ -2,8 +2,11 @@
 
 :class:`ViewComputer` keeps the last results of every stage (plane,
 surface, starts, runs, minima) and, given a new :class:`ViewState`, reruns
-just the stages :func:`stages_to_update` names. On failure it raises and
-keeps the previous results and state, so the last good view survives.
+just the stages :func:`stages_to_update` names. The stages are those of the
+one analysis pipeline (:mod:`basinview.core.analysis`): the state becomes a
+:class:`~basinview.core.ViewSpec` and each stage calls the same function
+:func:`~basinview.core.analyse` does. On failure it raises and keeps the
+previous results and state, so the last good view survives.
 """
 
 from __future__ import annotations
@@ -16,24 +19,30 @@ from typing import Any
 import numpy as np
 
 from ..core import (
+    Analysis,
+    BasinMap,
     Minima,
     Plane,
     Problem,
     Runs,
     Starts,
+    StepSizeSweep,
     Surface,
+    ViewSpec,
     axes_plane,
     combine_starts,
-    descend,
-    evaluate_surface,
+    compute_basins,
+    compute_minima,
+    compute_runs,
+    compute_surface,
+    compute_sweep,
     explicit_starts,
-    find_minima,
     hessian_plane,
     random_plane,
     random_starts,
-    record_settings,
     run_padding_floor,
 )
+from ..core.analysis import record_view
 from ..core.settings import Settings
 from .state import ViewState, stages_to_update
 
@@ -55,6 +64,17 @@ class ViewResults:
     runs: Runs
     minima: Minima | None
     preview: bool = False
+
+    @property
+    def analysis(self) -> Analysis:
+        """These results as an :class:`~basinview.core.Analysis` (no settings attached)."""
+        return Analysis(
+            plane=self.plane,
+            surface=self.surface,
+            starts=self.starts,
+            runs=self.runs,
+            minima=self.minima,
+        )
 
 
 @dataclass
@@ -101,16 +121,15 @@ class ViewComputer:
         """A quick coarse look at ``state`` (surface at preview resolution; not cached)."""
         state.check()
         stages = self.stages_for(state)
-        plane = self._plane(state) if "plane" in stages else self._results["plane"]
-        coarse = min(state.resolution, PREVIEW_RESOLUTION)
-        surface = evaluate_surface(self.problem, plane, span=state.span, resolution=coarse)
         r = self._results
+        plane = self._plane(state) if "plane" in stages else r["plane"]
         starts = (
             self._starts(state, plane) if "starts" in stages or "starts" not in r else r["starts"]
         )
-        runs = (
-            self._runs(state, plane, starts) if "runs" in stages or "runs" not in r else r["runs"]
-        )
+        view = state.view_spec(plane, starts)
+        coarse = min(state.resolution, PREVIEW_RESOLUTION)
+        surface = compute_surface(self.problem, view, resolution=coarse)
+        runs = self._runs(view) if "runs" in stages or "runs" not in r else r["runs"]
         return ViewResults(state, plane, surface, starts, runs, None, preview=True)
 
     def update(self, state: ViewState) -> tuple[ViewResults, tuple[str, ...]]:
@@ -121,24 +140,23 @@ class ViewComputer:
         state.check()
         stages = self.stages_for(state)
         new = dict(self._results)
-        for stage in stages:
+        # The plane and the starts make the view; the other stages compute on it.
+        for stage in ("plane", "starts", "surface", "runs", "minima"):
+            if stage not in stages:
+                continue
             t0 = time.perf_counter()
             if stage == "plane":
                 new["plane"] = self._plane(state)
-            elif stage == "surface":
-                new["surface"] = evaluate_surface(
-                    self.problem, new["plane"], span=state.span, resolution=state.resolution
-                )
             elif stage == "starts":
                 new["starts"] = self._starts(state, new["plane"])
-            elif stage == "runs":
-                new["runs"] = self._runs(state, new["plane"], new["starts"])
-            elif stage == "minima":
-                new["minima"] = (
-                    find_minima(self.problem, new["runs"])
-                    if (new["runs"].status == "converged").any()
-                    else None
-                )
+            else:
+                view = state.view_spec(new["plane"], new["starts"])
+                if stage == "surface":
+                    new["surface"] = compute_surface(self.problem, view)
+                elif stage == "runs":
+                    new["runs"] = self._runs(view)
+                else:
+                    new["minima"] = compute_minima(self.problem, new["runs"])
             self.seconds[stage] = time.perf_counter() - t0
             self.counts[stage] += 1
         self._results = new
@@ -147,20 +165,35 @@ class ViewComputer:
         assert results is not None
         return results, stages
 
-    def settings(self, note: str = "") -> Settings:
-        """A :class:`Settings` record of the current view."""
+    def view(self) -> ViewSpec:
+        """The :class:`~basinview.core.ViewSpec` of the current view."""
         if self._state is None:
             raise RuntimeError("nothing has been computed yet")
-        r = self._results
-        return record_settings(
+        return self._state.view_spec(self._results["plane"], self._results["starts"])
+
+    def settings(self, note: str = "") -> Settings:
+        """A :class:`Settings` record of the current view."""
+        return record_view(self.problem, self.view(), self._results["runs"], note=note)
+
+    def basins(self, resolution: int) -> BasinMap:
+        """A basin map of the current view at its (first) learning rate and hyper-parameters."""
+        state = self.state
+        assert state is not None
+        return compute_basins(
             self.problem,
-            plane=r["plane"],
-            span=self._state.span,
-            resolution=self._state.resolution,
-            starts=r["starts"],
-            runs=r["runs"],
-            note=note,
+            self.view(),
+            resolution=resolution,
+            learning_rate=state.learning_rate,
+            hyper=state.hyper_dict,
+            progress=False,
         )
+
+    def sweep(self, rates: Any) -> StepSizeSweep:
+        """A step-size sweep of the current starts over ``rates`` (the other hyper-parameters
+        at their first values)."""
+        state = self.state
+        assert state is not None
+        return compute_sweep(self.problem, self.view(), rates, hyper=state.hyper_dict)
 
     # ---------------------------------------------------------------- stages
     def _plane(self, state: ViewState) -> Plane:
@@ -171,7 +204,12 @@ class ViewComputer:
             return axes_plane(self.problem, state.x_label, state.y_label, origin=origin)
         if state.plane_kind == "random":
             return random_plane(
-                self.problem, seed=state.plane_seed, normalise=state.normalise, origin=origin
+                self.problem,
+                seed=state.plane_seed,
+                normalise=state.normalise,
+                zero_bias=state.zero_bias,
+                filter_axis=state.filter_axis,
+                origin=origin,
             )
         return hessian_plane(self.problem, origin=origin, seed=state.plane_seed)
 
@@ -206,14 +244,5 @@ class ViewComputer:
             self.problem.cached(("explorer-run-floor",), lambda: run_padding_floor(self.problem))
         )
 
-    def _runs(self, state: ViewState, plane: Plane, starts: Starts) -> Runs:
-        return descend(
-            self.problem,
-            starts,
-            optimizer=state.optimizer,
-            learning_rate=state.learning_rate,
-            hyper=state.hyper_dict,
-            steps=state.steps,
-            plane=plane,
-            min_runs=self._run_floor,
-        )
+    def _runs(self, view: ViewSpec) -> Runs:
+        return compute_runs(self.problem, view, min_runs=self._run_floor)

@@ -10,12 +10,24 @@ Pure and widget-free. A :class:`ViewState` holds the values of all controls;
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
-from ..core import ParameterError, Settings, get_rule
+from ..core import (
+    ParameterError,
+    Plane,
+    Problem,
+    Settings,
+    Starts,
+    ViewSpec,
+    default_tolerances,
+    get_rule,
+    plane_from_spec,
+    starts_from_spec,
+)
 
 __all__ = ["STAGES", "ViewState", "stages_to_update", "state_from_settings"]
 
@@ -24,10 +36,30 @@ STAGES = ("plane", "surface", "starts", "runs", "minima")
 
 # Which fields of the state each stage reads directly.
 _READS: dict[str, tuple[str, ...]] = {
-    "plane": ("plane_kind", "x_label", "y_label", "plane_seed", "normalise", "origin"),
+    "plane": (
+        "plane_kind",
+        "x_label",
+        "y_label",
+        "plane_seed",
+        "normalise",
+        "zero_bias",
+        "filter_axis",
+        "origin",
+    ),
     "surface": ("span", "resolution"),
     "starts": ("n_starts", "start_scale", "start_seed", "start_points"),
-    "runs": ("optimizer", "learning_rate", "hyper", "steps"),
+    "runs": (
+        "optimizer",
+        "learning_rate",
+        "hyper",
+        "grid",
+        "steps",
+        "grad_tol",
+        "loss_tol",
+        "divergence_factor",
+        "batch_size",
+        "batch_seed",
+    ),
     "minima": (),
 }
 # Which stages each stage depends on.
@@ -50,6 +82,7 @@ class ViewState:
         plane_kind: ``"axes"``, ``"random"`` or ``"hessian"``.
         x_label, y_label: coordinates of an axes plane.
         plane_seed, normalise: seed and normalisation of a random plane.
+        zero_bias, filter_axis: as in :func:`~basinview.core.random_plane`.
         origin: flat origin of the plane, or None for the problem's parameters.
         span: ``((a_min, a_max), (b_min, b_max))`` of the surface grid, in plane
             coordinates (parameter values on an axes plane).
@@ -57,7 +90,15 @@ class ViewState:
         optimizer: update-rule name.
         learning_rate: step size.
         hyper: other hyper-parameters as sorted ``(name, value)`` pairs.
+        grid: a grid of hyper-parameter values as sorted ``(name, values)`` pairs
+            (``"learning_rate"`` among them), e.g. from a recorded view; when
+            set, runs cover every combination, and ``learning_rate`` and ``hyper``
+            hold its first values (what the controls show). Changing the learning
+            rate, a hyper-parameter or the optimizer returns to one setting.
         steps: step budget.
+        grad_tol, loss_tol: convergence tolerances (None: by dtype).
+        divergence_factor, batch_size, batch_seed: as ``divergence_factor``,
+            ``batch_size`` and ``seed`` of :func:`~basinview.core.descend`.
         n_starts, start_scale, start_seed: random starts around the plane origin.
         start_points: extra starts (flat vectors), e.g. from clicks on the map.
     """
@@ -67,23 +108,40 @@ class ViewState:
     y_label: str = ""
     plane_seed: int = 0
     normalise: str = "filter"
+    zero_bias: bool = True
+    filter_axis: int = -1
     origin: tuple[float, ...] | None = None
     span: tuple[tuple[float, float], tuple[float, float]] = ((-1.0, 1.0), (-1.0, 1.0))
     resolution: int = 61
     optimizer: str = "gradient_descent"
     learning_rate: float = 0.01
     hyper: tuple[tuple[str, float], ...] = ()
+    grid: tuple[tuple[str, tuple[float, ...]], ...] = ()
     steps: int = 200
+    grad_tol: float | None = None
+    loss_tol: float | None = None
+    divergence_factor: float = 1e6
+    batch_size: int | None = None
+    batch_seed: int = 0
     n_starts: int = 8
     start_scale: float = 1.0
     start_seed: int = 0
     start_points: tuple[tuple[float, ...], ...] = ()
 
     def replace(self, **changes: Any) -> ViewState:
-        """A copy with ``changes``; ``hyper`` may be given as a dict."""
+        """A copy with ``changes``; ``hyper`` and ``grid`` may be given as dicts.
+
+        A grid is kept only while the single values (learning rate,
+        hyper-parameters, optimizer) stay its first values.
+        """
         if "hyper" in changes and isinstance(changes["hyper"], dict):
             changes["hyper"] = tuple(
                 sorted((str(k), float(v)) for k, v in changes["hyper"].items())
+            )
+        if "grid" in changes:
+            grid = dict(changes["grid"])
+            changes["grid"] = tuple(
+                sorted((str(k), tuple(float(x) for x in np.atleast_1d(v))) for k, v in grid.items())
             )
         if "start_points" in changes:
             changes["start_points"] = tuple(
@@ -91,11 +149,46 @@ class ViewState:
             )
         if "origin" in changes and changes["origin"] is not None:
             changes["origin"] = tuple(float(x) for x in changes["origin"])
-        return dataclasses.replace(self, **changes)
+        new = dataclasses.replace(self, **changes)
+        if new.grid and "grid" not in changes:
+            if new.optimizer != self.optimizer or not new._grid_matches():
+                new = dataclasses.replace(new, grid=())
+        return new
+
+    def _grid_matches(self) -> bool:
+        single = {"learning_rate": self.learning_rate, **self.hyper_dict}
+        return all(name in single and single[name] == values[0] for name, values in self.grid)
 
     @property
     def hyper_dict(self) -> dict[str, float]:
         return dict(self.hyper)
+
+    @property
+    def grid_size(self) -> int:
+        """Hyper-parameter settings the runs cover (1 without a grid)."""
+        return int(np.prod([len(v) for _, v in self.grid])) if self.grid else 1
+
+    def view_spec(self, plane: Plane, starts: Starts) -> ViewSpec:
+        """The :class:`~basinview.core.ViewSpec` of this state on ``plane`` from ``starts``."""
+        grid = dict(self.grid)
+        rates = grid.pop("learning_rate", (self.learning_rate,))
+        hyper = {k: (v,) for k, v in self.hyper}
+        hyper.update(grid)
+        return ViewSpec(
+            plane=plane,
+            starts=starts,
+            span=self.span,
+            resolution=(self.resolution, self.resolution),
+            optimizer=self.optimizer,
+            learning_rate=rates,
+            hyper=hyper,
+            steps=self.steps,
+            grad_tol=self.grad_tol,
+            loss_tol=self.loss_tol,
+            divergence_factor=self.divergence_factor,
+            batch_size=self.batch_size,
+            seed=self.batch_seed,
+        )
 
     def check(self) -> None:
         """Raise ParameterError for values no computation can use."""
@@ -127,8 +220,21 @@ def stages_to_update(old: ViewState | None, new: ViewState) -> tuple[str, ...]:
     return tuple(s for s in STAGES if s in dirty)
 
 
-def state_from_settings(settings: Settings, base: ViewState | None = None) -> ViewState:
-    """The view state a :class:`Settings` record describes (first learning rate if several)."""
+def state_from_settings(
+    settings: Settings, base: ViewState | None = None, *, problem: Problem | None = None
+) -> ViewState:
+    """The view state a :class:`Settings` record describes, with nothing left out.
+
+    A grid of learning rates and hyper-parameters becomes the state's ``grid``
+    (the controls show its first values); tolerances, divergence factor and
+    minibatch settings are kept. Starts the controls cannot describe (random
+    starts around another centre than the plane origin, several random
+    draws, grid starts) are rebuilt from the record as clicked starts, which
+    needs ``problem``. What the Explorer cannot show at all (other plane
+    kinds, a Hessian plane's solver, initialiser starts) raises
+    :class:`ParameterError` naming it; a non-square surface grid warns and
+    uses the finer resolution on both axes.
+    """
     base = base or ViewState()
     plane = settings.plane
     kind = plane.get("kind")
@@ -143,49 +249,98 @@ def state_from_settings(settings: Settings, base: ViewState | None = None) -> Vi
             "origin; convert them first with basinview.core.upgrade_record(problem, ...) "
             "or open them with Explorer.from_settings(problem, settings), which does."
         )
+    ra, rb = (int(r) for r in settings.resolution)
+    if ra != rb:
+        warnings.warn(
+            f"these settings use a {ra} x {rb} surface grid; the Explorer's grids are square, so "
+            f"it shows {max(ra, rb)} x {max(ra, rb)}. compute_view(problem, settings) rebuilds "
+            "the recorded grid.",
+            UserWarning,
+            stacklevel=2,
+        )
+    grid = {"learning_rate": settings.learning_rate, **settings.hyper}
     changes: dict[str, Any] = {
         "plane_kind": kind,
         "origin": plane.get("origin"),
         "span": settings.span,
-        "resolution": int(settings.resolution[0]),
+        "resolution": max(ra, rb),
         "optimizer": settings.optimizer,
         "learning_rate": float(settings.learning_rate[0]),
         "hyper": {k: v[0] for k, v in settings.hyper.items()},
+        "grid": grid if any(len(v) > 1 for v in grid.values()) else {},
         "steps": settings.steps,
+        # tolerances equal to the dtype's defaults stay "default" (None), as the Explorer sets them
+        **_tolerances(settings, problem),
+        "divergence_factor": settings.divergence_factor,
+        "batch_size": settings.batch_size,
+        "batch_seed": settings.seed,
     }
     if kind == "axes":
         changes.update(x_label=plane["x"], y_label=plane["y"])
     elif kind == "random":
         changes.update(
-            plane_seed=int(plane.get("seed", 0)), normalise=plane.get("normalise", "filter")
+            plane_seed=int(plane.get("seed", 0)),
+            normalise=plane.get("normalise", "filter"),
+            zero_bias=bool(plane.get("zero_bias", True)),
+            filter_axis=int(plane.get("filter_axis", -1)),
         )
     else:
+        if plane.get("method", "auto") != "auto":
+            raise ParameterError(
+                f"these settings use a Hessian plane found with method={plane['method']!r}; the "
+                "Explorer finds it with method='auto'. Rebuild that view with "
+                "basinview.core.compute_view instead."
+            )
         changes.update(plane_seed=int(plane.get("seed", 0)))
-    changes.update(_starts_fields(settings.starts))
+    changes.update(_starts_fields(settings, problem))
     return base.replace(**changes)
 
 
-def _starts_fields(spec: dict[str, Any]) -> dict[str, Any]:
+def _tolerances(settings: Settings, problem: Problem | None) -> dict[str, float | None]:
+    defaults = default_tolerances(problem.dtype) if problem is not None else {}
+    return {
+        name: None if defaults.get(name) == value else value
+        for name, value in (("grad_tol", settings.grad_tol), ("loss_tol", settings.loss_tol))
+    }
+
+
+def _starts_fields(settings: Settings, problem: Problem | None) -> dict[str, Any]:
+    spec = settings.starts
     parts = spec["parts"] if spec.get("kind") == "combined" else [spec]
-    fields: dict[str, Any] = {"n_starts": 0, "start_points": ()}
-    points: list[list[float]] = []
-    for part in parts:
-        kind = part.get("kind")
-        if kind == "random":
-            fields.update(
-                n_starts=int(part["count"]),
-                start_scale=float(part["scale"]),
-                start_seed=int(part["seed"]),
-            )
-        elif kind == "explicit":
-            points.extend(part["points"])
-        else:
-            raise ParameterError(
-                f"the Explorer uses random and explicit starts; these settings use {kind!r} starts. "
-                "Rebuild that view with basinview.core.compute_view instead."
-            )
-    fields["start_points"] = tuple(tuple(float(x) for x in p) for p in points)
-    return fields
+    kinds = [part.get("kind") for part in parts]
+    origin = settings.plane.get("origin")
+    # What the controls describe: one random draw around the plane origin, then clicked starts.
+    simple = all(k == "explicit" for k in kinds[1:]) and kinds[0] in ("random", "explicit")
+    if simple and kinds[0] == "random" and parts[0].get("center") != origin:
+        simple = False  # the Explorer draws its random starts around the plane origin
+    if simple:
+        fields: dict[str, Any] = {"n_starts": 0}
+        points: list[list[float]] = []
+        for part in parts:
+            if part["kind"] == "random":
+                fields.update(
+                    n_starts=int(part["count"]),
+                    start_scale=float(part["scale"]),
+                    start_seed=int(part["seed"]),
+                )
+            else:
+                points.extend(part["points"])
+        fields["start_points"] = tuple(tuple(float(x) for x in p) for p in points)
+        return fields
+    if "initializer" in kinds:
+        raise ParameterError(
+            "these settings use starts drawn by an initialiser, which the Explorer cannot redraw. "
+            "Rebuild that view with basinview.core.compute_view(problem, settings, "
+            "initializers=...) instead."
+        )
+    if problem is None:
+        raise ParameterError(
+            f"these settings use {kinds} starts, which the Explorer shows as clicked starts; "
+            "pass problem= to rebuild them."
+        )
+    plane_obj = plane_from_spec(problem, settings.plane) if "grid" in kinds else None
+    starts = starts_from_spec(problem, spec, plane=plane_obj)
+    return {"n_starts": 0, "start_points": tuple(tuple(float(x) for x in p) for p in starts.points)}
 
 
 def as_span(span: Any) -> tuple[tuple[float, float], tuple[float, float]]:

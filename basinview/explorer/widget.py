@@ -10,7 +10,6 @@ shown in the status line; the last good view stays.
 from __future__ import annotations
 
 import contextlib
-import dataclasses
 import html
 import time
 import traceback
@@ -31,10 +30,8 @@ from ..core import (
     Problem,
     Settings,
     SettingsError,
-    basin_map,
     get_rule,
-    step_size_sweep,
-    upgrade_record,
+    upgrade_settings,
 )
 from .compute import ViewComputer, ViewResults
 from .controls import Controls, respan
@@ -378,22 +375,12 @@ class Explorer:
     # ------------------------------------------------------------ analyses
     def map_basins(self, resolution: int | None = None) -> Any:
         """Run descent from a grid of starts on the slice; show and return the basin map."""
-        state, results = self.state, self.results
+        state = self.state
         res = int(resolution or self.basins_resolution.value)
         self._say(f"mapping basins from {res * res} starts…")
         self.progress.layout.display = None
         self.progress.value = 1
-        bm = basin_map(
-            self.problem,
-            results.plane,
-            span=state.span,
-            resolution=res,
-            optimizer=state.optimizer,
-            learning_rate=state.learning_rate,
-            hyper=state.hyper_dict,
-            steps=state.steps,
-            progress=False,
-        )
+        bm = self.computer.basins(res)
         self.progress.value = 4
         self._basins = (state, bm)
         self.view.value = "basins"
@@ -403,7 +390,7 @@ class Explorer:
 
     def sweep_step_sizes(self, learning_rates: Any = None) -> Any:
         """Rerun the current starts over a range of learning rates; show and return the sweep."""
-        state, results = self.state, self.results
+        state = self.state
         rates = (
             learning_rates
             if learning_rates is not None
@@ -412,14 +399,7 @@ class Explorer:
         self._say(f"sweeping {len(rates)} learning rates…")
         self.progress.layout.display = None
         self.progress.value = 1
-        sweep = step_size_sweep(
-            self.problem,
-            results.starts,
-            learning_rates=rates,
-            optimizer=state.optimizer,
-            hyper=state.hyper_dict,
-            steps=state.steps,
-        )
+        sweep = self.computer.sweep(rates)
         self.progress.value = 4
         self._sweep = (state, sweep)
         self.view.value = "step sizes"
@@ -455,16 +435,22 @@ class Explorer:
     def from_settings(
         cls, problem: Problem, settings: Settings | str | Path, **options: Any
     ) -> Explorer:
-        """An Explorer showing the view a Settings record (or JSON file) describes."""
+        """An Explorer showing the view a Settings record (or JSON file) describes.
+
+        A recorded grid of learning rates x hyper-parameters is run in full (the
+        controls show its first values; moving one of them returns to a single
+        setting), and the tolerances and minibatch settings are kept. What the
+        Explorer cannot show raises (or, for a non-square grid, warns); see
+        :func:`~basinview.explorer.state.state_from_settings`.
+        """
         if not isinstance(settings, Settings):
             settings = Settings.load(settings, problem=problem)
         else:
             settings.check(problem)
-        plane_spec, span, starts_spec = upgrade_record(
-            problem, settings.plane, settings.span, settings.starts
-        )
-        settings = dataclasses.replace(settings, plane=plane_spec, span=span, starts=starts_spec)
-        state = state_from_settings(settings)
+        settings = upgrade_settings(problem, settings)
+        state = state_from_settings(settings, problem=problem)
         fields = {f: getattr(state, f) for f in state.__dataclass_fields__ if f != "plane_kind"}
+        if {"learning_rate", "hyper", "optimizer"} & set(options) and "grid" not in options:
+            fields["grid"] = ()  # a rate or rule given here replaces the recorded grid
         fields.update(options)
         return cls(problem, state.plane_kind, **fields)

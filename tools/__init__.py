@@ -1,0 +1,1 @@
+"""Maintenance scripts (not part of the installed package)."""
