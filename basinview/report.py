@@ -274,7 +274,7 @@ def report_html(
         figure(
             "profile",
             "Profile",
-            F.profile_figure(profile, labels=labels),
+            F.profile_figure(profile, labels=labels, minima=minima),
             "The loss along the straight line between the two points, extended a little "
             "beyond each.",
             height=480,

@@ -25,10 +25,21 @@ from .descent import (
     descend,
     run_padding_floor,
 )
-from .errors import BasinviewError, FingerprintWarning, LossError, ParameterError, SettingsError
+from .errors import (
+    BasinviewError,
+    FingerprintWarning,
+    LossError,
+    MinimaWarning,
+    NoCriticalPointError,
+    ParameterError,
+    SettingsError,
+)
+from .identities import CriticalPointRegistry, critical_points
 from .minima import (
     DIVERGED_LABEL,
-    NOT_CONVERGED_LABEL,
+    MAX_STEPS_LABEL,
+    NOT_STATIONARY_LABEL,
+    OUTCOMES,
     BasinMap,
     CriticalPoint,
     Minima,
@@ -37,6 +48,7 @@ from .minima import (
     find_minima,
     refine,
 )
+from .stationary import Refinement, refine_point
 from .optimizers import (
     ADAM,
     GRADIENT_DESCENT,
@@ -78,7 +90,9 @@ __all__ = [
     "GRADIENT_DESCENT",
     "MOMENTUM",
     "NESTEROV",
-    "NOT_CONVERGED_LABEL",
+    "MAX_STEPS_LABEL",
+    "NOT_STATIONARY_LABEL",
+    "OUTCOMES",
     "RMSPROP",
     "RULES",
     "SCHEMA_VERSION",
@@ -87,13 +101,17 @@ __all__ = [
     "BasinMap",
     "BasinviewError",
     "CriticalPoint",
+    "CriticalPointRegistry",
     "FingerprintWarning",
     "LossError",
     "Minima",
+    "MinimaWarning",
+    "NoCriticalPointError",
     "ParameterError",
     "Plane",
     "Problem",
     "Profile",
+    "Refinement",
     "Runs",
     "Settings",
     "SettingsError",
@@ -112,6 +130,7 @@ __all__ = [
     "combine_starts",
     "compute_view",
     "count_compilations",
+    "critical_points",
     "default_plane",
     "default_tolerances",
     "descend",
@@ -134,6 +153,7 @@ __all__ = [
     "random_starts",
     "record_settings",
     "refine",
+    "refine_point",
     "regime_of",
     "run_padding_floor",
     "segment_profile",
