@@ -293,7 +293,7 @@ def _analyse(
     return results
 
 
-def _print_tables(problem: Any, runs: Any, minima: Any) -> None:
+def _print_tables(problem: Any, runs: Any, minima: Any, basin_map: Any = None) -> None:
     import numpy as np
     import pandas as pd
 
@@ -321,12 +321,20 @@ def _print_tables(problem: Any, runs: Any, minima: Any) -> None:
             )
             print("\nWhere converged runs ended (rounded):")
             print(found.reset_index().to_string(index=False))
+        cols = ["point", "kind", "loss", "grad_norm", "runs", "share", "lambda_min", "lambda_max"]
+        if problem.size <= 6:
+            cols += list(problem.labels)
         if len(minima):
-            cols = ["point", "kind", "loss", "runs", "share", "lambda_min", "lambda_max"]
-            if problem.size <= 6:
-                cols += list(problem.labels)
-            print("\nCritical points found:")
+            print("\nCritical points found (stationary: grad_norm below tolerance):")
             print(minima.table[cols].to_string(index=False))
+        # every letter the summary names is in a table: the basin map's points too
+        if basin_map is not None and len(basin_map.minima):
+            bm = basin_map.minima
+            extra = [i for i, lab in enumerate(bm.labels) if lab not in set(minima.labels)]
+            if extra:
+                print("\nFurther critical points reached from the basin map's starts:")
+                frame = bm.table.iloc[extra][cols].rename(columns={"runs": "starts"})
+                print(frame.to_string(index=False))
     print(f"\n{int(np.sum(runs.status == 'diverged'))} of {len(runs)} runs diverged.")
 
 
@@ -380,7 +388,7 @@ def _demo(args: argparse.Namespace) -> int:
         f"Surface: {surface.loss.shape[1]} x {surface.loss.shape[0]} grid, lowest grid point "
         f"x={x0[0]:.3f}, y={x0[1]:.3f} (loss {low:.4g})."
     )
-    _print_tables(problem, results["runs"], results["minima"])
+    _print_tables(problem, results["runs"], results["minima"], results.get("basin_map"))
     _finish(args.out, args.force, results, f"basinview demo: {sc.name}", sc.description)
     return 0
 
@@ -443,7 +451,7 @@ def _report(args: argparse.Namespace) -> int:
         basin_rate=min(rates),
         sweep_count=args.sweep_rates,
     )
-    _print_tables(problem, results["runs"], results["minima"])
+    _print_tables(problem, results["runs"], results["minima"], results.get("basin_map"))
     _finish(args.out, args.force, results, args.title or f"basinview report: {args.function}", "")
     return 0
 

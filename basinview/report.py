@@ -110,7 +110,7 @@ def summary_lines(
         status = np.asarray(runs.status)
         lines.append(
             f"Descent: {len(runs)} runs of {runs.rule}: {int(np.sum(status == 'converged'))} "
-            f"converged, {int(np.sum(status == 'max_steps'))} spent the step budget, "
+            f"converged, {int(np.sum(status == 'max_steps'))} max_steps (step budget spent), "
             f"{int(np.sum(status == 'diverged'))} diverged."
         )
     if minima is not None and len(minima):

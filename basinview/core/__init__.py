@@ -48,7 +48,6 @@ from .minima import (
     find_minima,
     refine,
 )
-from .stationary import Refinement, refine_point
 from .optimizers import (
     ADAM,
     GRADIENT_DESCENT,
@@ -74,6 +73,7 @@ from .starts import (
     random_starts,
     starts_from_spec,
 )
+from .stationary import Refinement, refine_point
 from .stepsize import StepSizeSweep, regime_of, step_size_sweep
 from .surface import (
     Profile,
@@ -88,9 +88,9 @@ __all__ = [
     "ADAM",
     "DIVERGED_LABEL",
     "GRADIENT_DESCENT",
+    "MAX_STEPS_LABEL",
     "MOMENTUM",
     "NESTEROV",
-    "MAX_STEPS_LABEL",
     "NOT_STATIONARY_LABEL",
     "OUTCOMES",
     "RMSPROP",

@@ -41,7 +41,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-__all__ = ["CriticalPointRegistry", "critical_points", "letter", "length_scale"]
+__all__ = ["CriticalPointRegistry", "critical_points", "length_scale", "letter"]
 
 
 def letter(index: int) -> str:

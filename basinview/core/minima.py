@@ -84,7 +84,12 @@ def _outcome_rows(minima: Minima, label: np.ndarray) -> pd.DataFrame:
     ]
     for code in (MAX_STEPS_LABEL, NOT_STATIONARY_LABEL, DIVERGED_LABEL):
         rows.append(
-            {"point": OUTCOMES[code], "kind": "", "loss": np.nan, "runs": int((label == code).sum())}
+            {
+                "point": OUTCOMES[code],
+                "kind": "",
+                "loss": np.nan,
+                "runs": int((label == code).sum()),
+            }
         )
     frame = pd.DataFrame(rows)
     frame["share"] = frame["runs"] / total
@@ -187,9 +192,7 @@ class Minima:
         return self.points[rows[0]]
 
 
-def _near(
-    points: np.ndarray, p: np.ndarray, xtol: float, scale: float
-) -> np.ndarray:
+def _near(points: np.ndarray, p: np.ndarray, xtol: float, scale: float) -> np.ndarray:
     """Which ``points`` lie within ``xtol * max(|p|, |q|, scale)`` of ``p``."""
     tol = xtol * np.maximum(np.maximum(np.linalg.norm(points, axis=1), np.linalg.norm(p)), scale)
     return np.linalg.norm(points - p, axis=1) <= tol
@@ -275,7 +278,11 @@ def find_minima(
             f"these runs belong to a problem with {runs.final.shape[1]} parameters; this "
             f"problem has {problem.size}. Pass the problem the runs were made with."
         )
-    if isinstance(refine_steps, bool) or not isinstance(refine_steps, (int, np.integer)) or refine_steps < 0:
+    if (
+        isinstance(refine_steps, bool)
+        or not isinstance(refine_steps, (int, np.integer))
+        or refine_steps < 0
+    ):
         raise ParameterError(f"refine_steps must be a whole number >= 0; got {refine_steps!r}.")
     xtol = default_rtol(problem.dtype) if xtol is None else float(xtol)
     n_runs = len(runs)
@@ -313,7 +320,9 @@ def find_minima(
             continue
         cp = classify(problem, ref.point)
         for k, (other, _) in enumerate(refined):
-            same = _near(other.point[None].astype(np.float64), cp.point.astype(np.float64), xtol, scale)
+            same = _near(
+                other.point[None].astype(np.float64), cp.point.astype(np.float64), xtol, scale
+            )
             if same[0] and _loss_near(np.array([other.loss]), cp.loss, ftol, fscale)[0]:
                 merged_index.append(k)
                 break
@@ -326,7 +335,9 @@ def find_minima(
     order = np.argsort([cp.loss for cp, _ in refined], kind="stable")
     remap = np.zeros(len(refined), dtype=np.int64)
     remap[order] = np.arange(len(refined))
-    assignment = np.where(assignment >= 0, remap[np.maximum(assignment, 0)] if len(refined) else 0, assignment)
+    assignment = np.where(
+        assignment >= 0, remap[np.maximum(assignment, 0)] if len(refined) else 0, assignment
+    )
     pts = [refined[i] for i in order]
     n = problem.size
     points = np.array([cp.point for cp, _ in pts]).reshape(len(pts), n)
@@ -336,7 +347,9 @@ def find_minima(
     count = np.array([(assignment == i).sum() for i in range(len(pts))], dtype=np.int64)
     if not len(pts) and n_runs:
         unresolved = int(np.sum(np.asarray(merged_index) == NOT_STATIONARY_LABEL))
-        warnings.warn(_empty_warning(runs, include_unconverged, unresolved), MinimaWarning, stacklevel=2)
+        warnings.warn(
+            _empty_warning(runs, include_unconverged, unresolved), MinimaWarning, stacklevel=2
+        )
     return Minima(
         points=points,
         loss=loss,

@@ -234,7 +234,9 @@ def refine_point(
     )
 
 
-def refine(problem: Problem, theta: Any, *, steps: int = 50, grad_tol: float | None = None) -> np.ndarray:
+def refine(
+    problem: Problem, theta: Any, *, steps: int = 50, grad_tol: float | None = None
+) -> np.ndarray:
     """The point :func:`refine_point` reaches from ``theta`` (flat, the problem's dtype).
 
     Check ``refine_point(...).stationary`` (or the ``grad_norm`` column of

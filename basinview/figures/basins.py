@@ -8,12 +8,12 @@ import numpy as np
 import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
+from ..core.minima import OUTCOMES
 from ..core.surface import Profile, Surface
 from .build import FigureSpec
 from .levels import choose_levels
 from .overlays import add_critical_points, shift_traces
 from .slices import slice_caution
-from ..core.minima import OUTCOMES
 from .style import OUTCOME_STYLES, add_note, base_layout, category_colour, uid
 
 __all__ = ["basin_figure", "profile_figure"]
