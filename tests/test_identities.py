@@ -319,3 +319,42 @@ def test_explorer_shows_an_empty_result_in_its_status_line():
     assert ex.results.minima is None or len(ex.results.minima) == 0
     assert "no run converged" in ex.status.value and "more steps" in ex.status.value
     assert "max_steps" in ex.status.value and "⚠" not in ex.status.value
+
+
+def test_hessian_free_refinement_finds_a_saddle_of_a_large_quadratic(x64):
+    # More parameters than the dense-Hessian limit: Newton-Krylov steps on Hessian-vector
+    # products. Reference: the stationary point A^-1 b of 0.5 x'Ax - b'x, by numpy.linalg.
+    from basinview.core.curvature import EXACT_LIMIT
+    from basinview.core.stationary import refine_point
+
+    n = EXACT_LIMIT + 50
+    rng = np.random.default_rng(3)
+    eig = np.concatenate([-rng.uniform(0.5, 1.0, 10), rng.uniform(0.5, 2.0, n - 10)])
+    q, _ = np.linalg.qr(rng.standard_normal((n, n)))
+    a = (q * eig) @ q.T
+    b = rng.standard_normal(n)
+    prob = Problem(lambda x, a, b: 0.5 * x @ a @ x - b @ x, jnp.zeros(n), a, b)
+    target = np.linalg.solve(a, b)
+    out = refine_point(prob, target + 0.3 * rng.standard_normal(n))
+    assert out.stationary and out.grad_norm <= 1e-6
+    np.testing.assert_allclose(out.point, target, atol=1e-5)
+    assert core.classify(prob, out.point).kind == "saddle"
+
+
+def test_grouping_follows_the_parameter_scale(x64):
+    # Two wells at x = +-s with s = 1e-5 (derived from the definition): a tolerance
+    # relative to max(1, |p|) would merge them; one relative to the parameters' own size
+    # keeps them apart.
+    s = 1e-5
+
+    def wells(p):
+        return ((p[0] / s) ** 2 - 1) ** 2 + (p[1] / s) ** 2
+
+    prob = Problem(wells, jnp.array([0.5 * s, 0.0]))
+    starts = np.array([[0.5, 0.3], [1.5, -0.2], [-0.6, 0.1], [-1.4, 0.4]]) * s
+    runs = descend(prob, starts, learning_rate=1e-11, steps=2000)
+    assert (runs.status == "converged").all()
+    minima = find_minima(prob, runs)
+    assert len(minima) == 2
+    np.testing.assert_allclose(np.sort(minima.points[:, 0]), [-s, s], rtol=1e-6)
+    assert minima.count.tolist() == [2, 2]
