@@ -4,8 +4,10 @@ Every critical point found on a :class:`~basinview.core.Problem` is entered
 once in that problem's :class:`CriticalPointRegistry`, kept with the problem
 (``problem.cached``; no global state), and keeps the letter and colour index
 it got there in every later call on the same problem: the minima of a slice's
-runs, a basin map, a step-size sweep, the tables, the command line summary,
-and recomputations after new runs or new starts. Figures never number points
+runs, a basin map, the tables and figures built from them, the Explorer's
+views and status line, the command line summary, and recomputations after
+new runs or new starts (:func:`~basinview.core.find_minima` and
+:func:`~basinview.core.basin_map` both ask the registry). Figures never number points
 themselves; they read :attr:`Minima.labels <basinview.core.Minima.labels>`
 and :attr:`Minima.colour_index <basinview.core.Minima.colour_index>`.
 

@@ -47,12 +47,17 @@ CYCLE_SYMBOLS = ("circle", "square", "diamond", "triangle-up", "pentagon")
 
 
 def colour_note(groups: list[PathGroup]) -> str:
-    """A note for figures with more categories than colours (empty otherwise)."""
-    n = sum(g.key not in OUTCOME_KEYS for g in groups)
-    if n <= len(CATEGORY_COLOURS):
+    """A note for figures where groups share a colour (empty otherwise).
+
+    Points keep their registry colour, so two points can share one (the 1st
+    and 8th registered, say) even when few are drawn.
+    """
+    cats = [g for g in groups if g.key not in OUTCOME_KEYS]
+    colours = len({g.colour for g in cats})
+    if colours == len(cats):
         return ""
     return (
-        f"{n} groups share {len(CATEGORY_COLOURS)} colours: after every seven the end-marker "
+        f"{len(cats)} groups share {colours} colours: after every seven the end-marker "
         "shape changes (circle, square, diamond, ...); hover or the legend tells them apart."
     )
 
