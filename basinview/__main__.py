@@ -52,7 +52,7 @@ __all__ = ["CommandError", "load_data", "load_params", "main"]
 EXIT_BAD_INPUT = 2
 
 
-def _print_tables(problem: Any, runs: Any, minima: Any) -> None:
+def _print_tables(problem: Any, runs: Any, minima: Any, basin_map: Any = None) -> None:
     import numpy as np
     import pandas as pd
 
@@ -80,12 +80,21 @@ def _print_tables(problem: Any, runs: Any, minima: Any) -> None:
             )
             print("\nWhere converged runs ended (rounded):")
             print(found.reset_index().to_string(index=False))
+        cols = ["point", "kind", "loss", "grad_norm", "runs", "share", "lambda_min", "lambda_max"]
+        if problem.size <= 6:
+            cols += list(problem.labels)
         if minima is not None and len(minima):
-            cols = ["point", "kind", "loss", "runs", "share", "lambda_min", "lambda_max"]
-            if problem.size <= 6:
-                cols += list(problem.labels)
-            print("\nCritical points found:")
+            print("\nCritical points found (stationary: grad_norm below tolerance):")
             print(minima.table[cols].to_string(index=False))
+        # every letter the summary names is in a table: the basin map's points too
+        if basin_map is not None and len(basin_map.minima):
+            bm = basin_map.minima
+            known = set(minima.labels) if minima is not None else set()
+            extra = [i for i, lab in enumerate(bm.labels) if lab not in known]
+            if extra:
+                print("\nFurther critical points reached from the basin map's starts:")
+                frame = bm.table.iloc[extra][cols].rename(columns={"runs": "starts"})
+                print(frame.to_string(index=False))
     print(f"\n{int(np.sum(runs.status == 'diverged'))} of {len(runs)} runs diverged.")
 
 
@@ -130,7 +139,7 @@ def _demo(args: argparse.Namespace) -> int:
         f"Surface: {surface.loss.shape[1]} x {surface.loss.shape[0]} grid, lowest grid point "
         f"x={x0[0]:.3f}, y={x0[1]:.3f} (loss {low:.4g})."
     )
-    _print_tables(problem, analysis.runs, analysis.minima)
+    _print_tables(problem, analysis.runs, analysis.minima, analysis.basin_map)
     _finish(args.out, args.force, analysis, f"basinview demo: {sc.name}", sc.description)
     return 0
 
@@ -187,7 +196,7 @@ def _report(args: argparse.Namespace) -> int:
         basin_rate=min(rates),
         sweep_rates=args.sweep_rates,
     )
-    _print_tables(problem, analysis.runs, analysis.minima)
+    _print_tables(problem, analysis.runs, analysis.minima, analysis.basin_map)
     title = args.title or f"basinview report: {args.function}"
     _finish(args.out, args.force, analysis, title, note and f"Plane: {note}")
     return 0

@@ -106,7 +106,7 @@ def summary_lines(analysis: Analysis) -> tuple[list[str], str]:
         status = np.asarray(runs.status)
         lines.append(
             f"Descent: {len(runs)} runs of {runs.rule}: {int(np.sum(status == 'converged'))} "
-            f"converged, {int(np.sum(status == 'max_steps'))} spent the step budget, "
+            f"converged, {int(np.sum(status == 'max_steps'))} max_steps (step budget spent), "
             f"{int(np.sum(status == 'diverged'))} diverged."
         )
     if minima is not None and len(minima):
@@ -266,7 +266,7 @@ def report_html(
         figure(
             "profile",
             "Profile",
-            F.profile_figure(profile, labels=labels),
+            F.profile_figure(profile, labels=labels, minima=minima),
             "The loss along the straight line between the two points, extended a little "
             "beyond each.",
             height=480,

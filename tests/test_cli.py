@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 import subprocess
 import sys
 import textwrap
@@ -57,6 +58,14 @@ def test_demo_prints_the_analysis_and_writes_the_report(tmp_path):
     assert "4.97" in text and "2.97" in text
     assert "-2.78" in text
     assert "Caution:" in text
+    # every letter the summary names is a row of a printed table
+    summary = text[text.index("Summary:") :]
+    tables = text[: text.index("Summary:")]
+    named = set(re.findall(r"\b([A-Z]{1,2}) \((?:minimum|saddle|maximum|degenerate)", summary))
+    named |= set(re.findall(r"\b([A-Z]{1,2}) \d+%", summary))
+    assert named, summary
+    rows = set(re.findall(r"^\s*([A-Z]{1,2})\s+(?:minimum|saddle|maximum|degenerate)\s", tables, re.M))
+    assert named <= rows, (named, rows)
     assert f"Report written to {out.resolve()}" in text
     page = out.read_text(encoding="utf-8")
     assert page.startswith(MARKER)

@@ -21,7 +21,7 @@ from basinview import core
 from basinview import figures as F
 from basinview.figures.levels import choose_levels
 from basinview.figures.paths import draw_indices
-from basinview.figures.style import DIVERGED, NOT_CONVERGED, OKABE_ITO, uid
+from basinview.figures.style import DIVERGED, MAX_STEPS, NOT_STATIONARY, OKABE_ITO, uid
 
 
 def bowl(p):
@@ -405,10 +405,14 @@ def test_figures_do_not_import_widgets():
     assert out.stdout.strip() == ""
 
 
-def test_not_converged_style_is_distinct_from_diverged():
-    assert NOT_CONVERGED["colour"] != DIVERGED["colour"]
-    assert NOT_CONVERGED["dash"] != DIVERGED["dash"]
-    assert NOT_CONVERGED["end_symbol"] != DIVERGED["end_symbol"]
+def test_outcome_styles_are_distinct():
+    styles = [MAX_STEPS, NOT_STATIONARY, DIVERGED]
+    for key in ("colour", "dash", "end_symbol", "name"):
+        assert len({s[key] for s in styles}) == 3, key
+    # one vocabulary: the figures' names are the core's outcome names and the run status
+    assert {s["name"] for s in styles} == set(core.OUTCOMES.values())
+    assert MAX_STEPS["name"] == "max_steps" and MAX_STEPS["name"] in core.STATUSES
+    assert all(s["legend"].startswith(s["name"]) for s in styles)
 
 
 # ------------------------------------------------------------------ basins
@@ -458,24 +462,28 @@ def test_basin_figure_finds_the_four_published_minima(himmelblau_basins):
     assert uids(fig) == uids(F.basin_figure(bm, surface=surface))
 
 
-def test_basin_figure_diverged_and_stuck_cells_are_distinct(himmelblau_basins):
+def test_basin_figure_outcome_cells_are_distinct(himmelblau_basins):
     _, _, bm, _ = himmelblau_basins
     label = bm.label.copy()
-    label[0, :3] = -1
-    label[1, :2] = -2
+    label[0, :3] = core.DIVERGED_LABEL
+    label[1, :2] = core.MAX_STEPS_LABEL
+    label[2, :1] = core.NOT_STATIONARY_LABEL
     fake = core.BasinMap(bm.plane, bm.a, bm.b, label, bm.minima, bm.runs)
     fig = F.basin_figure(fake)
     keys = {
         t.name.split(" (")[0]: t.marker.color for t in fig.data if t.uid.startswith("basins-key")
     }
     assert keys["diverged"] == DIVERGED["colour"]
-    assert keys["not converged"] == NOT_CONVERGED["colour"]
+    assert keys["max_steps"] == MAX_STEPS["colour"]
+    assert keys["not stationary"] == NOT_STATIONARY["colour"]
     minimum_colours = [c for name, c in keys.items() if ":" in name]
-    assert DIVERGED["colour"] not in minimum_colours
-    assert NOT_CONVERGED["colour"] not in minimum_colours
+    for style in (DIVERGED, MAX_STEPS, NOT_STATIONARY):
+        assert style["colour"] not in minimum_colours
+    shares = fake.shares.set_index("point")
+    assert shares.loc["max_steps", "starts"] == 2 and shares.loc["not stationary", "starts"] == 1
     bad = label.copy()
     bad[2, 2] = 17
-    with pytest.raises(core.BasinviewError, match="match no minimum"):
+    with pytest.raises(core.BasinviewError, match="match no point"):
         F.basin_figure(core.BasinMap(bm.plane, bm.a, bm.b, bad, bm.minima, bm.runs))
 
 
@@ -490,7 +498,7 @@ def test_slice_colours_paths_by_minimum(himmelblau_basins):
     paths = {t.uid: t for t in fig.data if t.uid.startswith("slice-path-")}
     assignment = np.asarray(minima.assignment)
     for k in np.unique(assignment[assignment >= 0]):
-        trace = paths[f"slice-path-m{k}"]
+        trace = paths[f"slice-path-m{minima.colour_index[k]}"]
         assert trace.name.startswith(minima.labels[k] + ":")
         assert segments(trace) == int(np.sum(assignment == k))
     marks = next(t for t in fig.data if t.uid == "slice-critical-points")
@@ -551,15 +559,16 @@ def test_auto_colours_fall_back_when_no_run_reached_a_point(bowl_view):
     prob, plane, surface, _ = bowl_view
     starts = np.array([[1.5, 1.0], [-1.0, 1.2]], np.float32)
     runs = core.descend(prob, starts, learning_rate=[0.01, 0.02], steps=3, plane=plane)
-    minima = core.find_minima(prob, runs)
-    assert len(minima) == 0 and np.all(minima.assignment == -2)
+    with pytest.warns(core.MinimaWarning, match="include_unconverged=True"):
+        minima = core.find_minima(prob, runs)
+    assert len(minima) == 0 and np.all(minima.assignment == core.MAX_STEPS_LABEL)
     fig = F.slice_figure(surface, runs, minima=minima)
     names = sorted(t.name for t in fig.data if t.uid.startswith("slice-path-"))
     assert names == ["learning rate 0.01", "learning rate 0.02"]
     forced = F.slice_figure(surface, runs, minima=minima, color_by="minimum")
     only = [t for t in forced.data if t.uid.startswith("slice-path-")]
-    assert [t.name for t in only] == [NOT_CONVERGED["name"]]
-    assert only[0].line.dash == NOT_CONVERGED["dash"]
+    assert [t.name for t in only] == [MAX_STEPS["legend"]]
+    assert only[0].line.dash == MAX_STEPS["dash"]
 
 
 def test_more_groups_than_colours_change_the_end_marker_shape(bowl_view):

@@ -39,10 +39,21 @@ from .descent import (
     descend,
     run_padding_floor,
 )
-from .errors import BasinviewError, FingerprintWarning, LossError, ParameterError, SettingsError
+from .errors import (
+    BasinviewError,
+    FingerprintWarning,
+    LossError,
+    MinimaWarning,
+    NoCriticalPointError,
+    ParameterError,
+    SettingsError,
+)
+from .identities import CriticalPointRegistry, critical_points
 from .minima import (
     DIVERGED_LABEL,
-    NOT_CONVERGED_LABEL,
+    MAX_STEPS_LABEL,
+    NOT_STATIONARY_LABEL,
+    OUTCOMES,
     BasinMap,
     CriticalPoint,
     Minima,
@@ -77,6 +88,7 @@ from .starts import (
     random_starts,
     starts_from_spec,
 )
+from .stationary import Refinement, refine_point
 from .stepsize import StepSizeSweep, regime_of, step_size_sweep
 from .surface import (
     Profile,
@@ -92,9 +104,11 @@ __all__ = [
     "ADAM",
     "DIVERGED_LABEL",
     "GRADIENT_DESCENT",
+    "MAX_STEPS_LABEL",
     "MOMENTUM",
     "NESTEROV",
-    "NOT_CONVERGED_LABEL",
+    "NOT_STATIONARY_LABEL",
+    "OUTCOMES",
     "RMSPROP",
     "RULES",
     "SCHEMA_VERSION",
@@ -104,13 +118,17 @@ __all__ = [
     "BasinMap",
     "BasinviewError",
     "CriticalPoint",
+    "CriticalPointRegistry",
     "FingerprintWarning",
     "LossError",
     "Minima",
+    "MinimaWarning",
+    "NoCriticalPointError",
     "ParameterError",
     "Plane",
     "Problem",
     "Profile",
+    "Refinement",
     "Runs",
     "Settings",
     "SettingsError",
@@ -137,6 +155,7 @@ __all__ = [
     "compute_sweep",
     "compute_view",
     "count_compilations",
+    "critical_points",
     "default_plane",
     "default_tolerances",
     "descend",
@@ -160,6 +179,7 @@ __all__ = [
     "random_starts",
     "record_settings",
     "refine",
+    "refine_point",
     "regime_of",
     "run_padding_floor",
     "segment_profile",

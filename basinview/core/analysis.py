@@ -224,7 +224,9 @@ def compute_sweep(
     if isinstance(rates, bool):
         raise ParameterError(f"rates must be learning rates or their count; got {rates!r}.")
     if isinstance(rates, (int, np.integer)):
-        at = minima.points[0] if minima is not None and len(minima) else None
+        at = None
+        if minima is not None and "minimum" in list(minima.kind):
+            at = minima.lowest()
         chosen = list(sweep_rates_around_bound(problem, view, int(rates), at=at, hyper=hyper))
     else:
         chosen = rates

@@ -12,6 +12,8 @@ __all__ = [
     "BasinviewError",
     "FingerprintWarning",
     "LossError",
+    "MinimaWarning",
+    "NoCriticalPointError",
     "ParameterError",
     "SettingsError",
 ]
@@ -35,3 +37,11 @@ class SettingsError(BasinviewError):
 
 class FingerprintWarning(UserWarning):
     """Settings were recorded for different data or initial parameters."""
+
+
+class NoCriticalPointError(BasinviewError, IndexError):
+    """A result holds no critical point of the kind asked for (also an ``IndexError``)."""
+
+
+class MinimaWarning(UserWarning):
+    """find_minima found no critical point, or its result may mislead; the message names the fixes."""

@@ -13,6 +13,7 @@ import contextlib
 import html
 import time
 import traceback
+import warnings
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -26,6 +27,7 @@ from IPython.display import display
 from .. import figures
 from ..core import (
     BasinviewError,
+    MinimaWarning,
     Plane,
     Problem,
     Settings,
@@ -42,6 +44,15 @@ from .sync import FigureView, source_uids, sync_figure
 __all__ = ["SIDE_VIEWS", "Explorer"]
 
 SIDE_VIEWS = ("relief", "loss curves", "basins", "step sizes", "runs", "minima")
+
+
+def _letters(minima: Any) -> str:
+    """`` · critical points A (minimum), B (saddle)`` for the status line (letters as in every view)."""
+    if minima is None or not len(minima):
+        return ""
+    return " · critical points " + ", ".join(
+        f"{name} ({kind})" for name, kind in zip(minima.labels, minima.kind)
+    )
 
 
 def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewState:
@@ -273,10 +284,13 @@ class Explorer:
     def _apply(self, state: ViewState, *, show: bool = False) -> None:
         state.check()
         t0 = time.perf_counter()
-        if self.computer.state is not None and self.computer.wants_preview(state):
-            self._say("coarse preview; computing full resolution…")
-            self._draw_main(self.computer.preview(state))
-        results, stages = self.computer.update(state)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", MinimaWarning)
+            if self.computer.state is not None and self.computer.wants_preview(state):
+                self._say("coarse preview; computing full resolution…")
+                self._draw_main(self.computer.preview(state))
+            results, stages = self.computer.update(state)
+        notes = self._pass_on(caught)
         if show:
             with self._suspended():
                 self.controls.show(state)
@@ -288,9 +302,27 @@ class Explorer:
         runs = results.runs
         counts = pd.Series(runs.status).value_counts().to_dict()
         summary = ", ".join(f"{v} {k}" for k, v in counts.items())
+        found = _letters(results.minima)
+        if results.minima is None and not notes and not (runs.status == "converged").any():
+            notes.append(
+                "no run converged, so no critical point is marked: run more steps or "
+                "loosen the tolerance"
+            )
         self._say(
-            f"{len(runs)} runs: {summary} · updated {', '.join(stages) or 'nothing'} in {elapsed:.2f} s"
+            f"{len(runs)} runs: {summary}{found} · updated {', '.join(stages) or 'nothing'} "
+            f"in {elapsed:.2f} s" + "".join(f" · {n}" for n in notes)
         )
+
+    @staticmethod
+    def _pass_on(caught: list[warnings.WarningMessage]) -> list[str]:
+        """Texts of the MinimaWarnings caught (for the status line); other warnings go on."""
+        notes = []
+        for item in caught:
+            if issubclass(item.category, MinimaWarning):
+                notes.append(str(item.message))
+            else:
+                warnings.warn_explicit(item.message, item.category, item.filename, item.lineno)
+        return notes
 
     def _forget_clicks(self) -> None:
         self._apply(self.state.replace(start_points=()))
@@ -380,12 +412,18 @@ class Explorer:
         self._say(f"mapping basins from {res * res} starts…")
         self.progress.layout.display = None
         self.progress.value = 1
-        bm = self.computer.basins(res)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", MinimaWarning)
+            bm = self.computer.basins(res)
+        notes = self._pass_on(caught)
         self.progress.value = 4
         self._basins = (state, bm)
         self.view.value = "basins"
         self._draw_side()
-        self._say(f"basin map: {len(bm.minima)} critical points from {res * res} starts")
+        self._say(
+            f"basin map: {len(bm.minima)} critical points{_letters(bm.minima)} from "
+            f"{res * res} starts" + "".join(f" · {n}" for n in notes)
+        )
         return bm
 
     def sweep_step_sizes(self, learning_rates: Any = None) -> Any:

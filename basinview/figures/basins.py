@@ -8,21 +8,29 @@ import numpy as np
 import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
+from ..core.minima import OUTCOMES
 from ..core.surface import Profile, Surface
 from .build import FigureSpec
 from .levels import choose_levels
 from .overlays import add_critical_points
 from .slices import slice_caution
-from .style import DIVERGED, NOT_CONVERGED, add_note, base_layout, category_colour, uid
+from .style import OUTCOME_STYLES, add_note, base_layout, category_colour, uid
 
 __all__ = ["basin_figure", "profile_figure"]
 
 
 def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str]]:
-    """``(code, legend name, colour)`` for every code present in ``label``."""
+    """``(code, legend name, colour)`` for every code present in ``label``.
+
+    Points are named by their letters and coloured by their colour index in
+    the problem's registry, so a basin has the letter and colour its point has
+    in every other figure; outcome labels use the names of
+    :data:`basinview.core.OUTCOMES`.
+    """
     total = label.size
     cats = []
     names = list(minima.labels)
+    colours = np.asarray(minima.colour_index)
     for k in range(len(names)):
         count = int(np.sum(label == k))
         if count:
@@ -30,18 +38,19 @@ def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str]]:
                 f"{names[k]}: {minima.kind[k]}, loss {float(minima.loss[k]):.3g} "
                 f"({100 * count / total:.0f}% of starts)"
             )
-            cats.append((k, name, category_colour(k)))
-    for code, style in ((-2, NOT_CONVERGED), (-1, DIVERGED)):
+            cats.append((k, name, category_colour(int(colours[k]))))
+    for code, style in OUTCOME_STYLES.items():
         count = int(np.sum(label == code))
         if count:
             cats.append(
-                (code, f"{style['name']} ({100 * count / total:.0f}% of starts)", style["colour"])
+                (code, f"{style['legend']} ({100 * count / total:.0f}% of starts)", style["colour"])
             )
     unknown = sorted(set(np.unique(label).tolist()) - {c for c, _, _ in cats})
     if unknown:
+        known = ", ".join(f"{c} ({OUTCOMES[c]})" for c in sorted(OUTCOMES, reverse=True))
         raise ParameterError(
-            f"the basin map holds labels {unknown} that match no minimum of its minima "
-            f"({len(names)} points) and are not -1 (diverged) or -2 (not converged)."
+            f"the basin map holds labels {unknown} that match no point of its minima "
+            f"({len(names)} points) and are not one of the outcome labels {known}."
         )
     return cats
 
@@ -55,8 +64,10 @@ def basin_figure(
     """Which minimum each start on the slice leads to.
 
     Every cell is a start on the plane, coloured by the point its run
-    reached; runs that diverged are grey and runs that spent their step
-    budget dark grey. The legend gives each basin's share of the starts.
+    reached (its letter and colour are the point's in every figure on the
+    problem); runs that diverged are grey, runs that spent their step budget
+    (max_steps) dark grey and runs whose end point is not stationary slate.
+    The legend gives each basin's share of the starts.
     Critical points found are marked with their letters (projected onto
     the plane; hover shows how far off it they lie). With ``surface``,
     contour lines of the loss are drawn on top.
@@ -116,7 +127,11 @@ def basin_figure(
                 "name": name,
                 "marker": {"symbol": "square", "size": 14, "color": colour},
                 "legendrank": 10 + i,
-                "uid": uid("basins", "key", "m" + str(code) if code >= 0 else f"n{-code}"),
+                "uid": uid(
+                    "basins",
+                    "key",
+                    f"m{int(minima.colour_index[code])}" if code >= 0 else f"n{-code}",
+                ),
             }
         )
     if surface is not None:
@@ -177,13 +192,25 @@ def basin_figure(
     return fig.figure()
 
 
+def _end_colour(label: str, minima: Any) -> str:
+    names = list(minima.labels) if minima is not None else []
+    if label in names:
+        return category_colour(int(minima.colour_index[names.index(label)]))
+    return "white"
+
+
 def profile_figure(
     profile: Profile,
     *,
     labels: tuple[str, str] = ("start", "end"),
+    minima: Any = None,
     title: str | None = None,
 ) -> go.Figure:
     """The loss along the straight segment between two points, with the barrier marked.
+
+    With ``minima`` (whose letters the ``labels`` are), each end is drawn in
+    its point's colour; otherwise the ends are white stars, as critical points
+    are on the slice.
 
     ``t = 0`` is the first point and ``t = 1`` the second; the segment is
     extended a little beyond both ends (lighter line). The barrier is the
@@ -233,7 +260,7 @@ def profile_figure(
             "marker": {
                 "symbol": "star",
                 "size": 15,
-                "color": [category_colour(0), category_colour(1)],
+                "color": [_end_colour(lab, minima) for lab in labels],
                 "line": {"color": "#111111", "width": 1},
             },
             "name": "the two points",

@@ -13,7 +13,7 @@ from ..core.errors import ParameterError
 from .build import FigureSpec
 from .levels import choose_levels
 from .paths import colour_note, draw_indices, group_runs, select_runs
-from .style import DIVERGED, NOT_CONVERGED, OKABE_ITO, add_note, base_layout, uid
+from .style import DIVERGED, MAX_STEPS, OKABE_ITO, add_note, base_layout, uid
 
 __all__ = ["REGIME_COLOURS", "loss_curves_figure", "step_size_figure"]
 
@@ -260,7 +260,7 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     runs_col = table["runs"].to_numpy(dtype=np.float64)
     shares = [
         ("converged", table["converged"], OKABE_ITO["bluish green"]),
-        (NOT_CONVERGED["name"], table["max_steps"], NOT_CONVERGED["colour"]),
+        (MAX_STEPS["name"], table["max_steps"], MAX_STEPS["colour"]),
         (DIVERGED["name"], table["diverged"], DIVERGED["colour"]),
     ]
     for rank, (name, counts, colour) in enumerate(shares):

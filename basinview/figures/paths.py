@@ -4,6 +4,12 @@ Runs are drawn in groups (one trace per group, paths separated by NaN
 gaps), so a figure with hundreds of runs has a handful of traces and builds
 quickly. Groups are by the minimum a run reached, by learning rate, or by
 start; runs that diverged always form their own grey, dashed group.
+
+Colouring by minimum reads each point's letter and colour index from the
+:class:`~basinview.core.Minima` (the problem's registry), so a point has
+the same letter and colour in every figure. Runs that reached no point are
+drawn by outcome, with the names of :data:`basinview.core.OUTCOMES`
+(``max_steps``, ``not stationary``, ``diverged``).
 """
 
 from __future__ import annotations
@@ -16,11 +22,13 @@ import numpy as np
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
-from .style import CATEGORY_COLOURS, DIVERGED, NOT_CONVERGED, category_colour
+from ..core.minima import DIVERGED_LABEL, MAX_STEPS_LABEL, NOT_STATIONARY_LABEL
+from .style import CATEGORY_COLOURS, DIVERGED, MAX_STEPS, NOT_STATIONARY, category_colour
 
 __all__ = [
     "COLOR_BY",
     "CYCLE_SYMBOLS",
+    "OUTCOME_KEYS",
     "PathGroup",
     "colour_note",
     "draw_indices",
@@ -31,17 +39,25 @@ __all__ = [
 
 COLOR_BY = ("auto", "minimum", "learning_rate", "start", "status")
 
+#: Group keys of runs that reached no critical point (one per outcome label).
+OUTCOME_KEYS = ("max_steps", "not-stationary", "diverged")
+
 #: End-marker shapes of the first, second, ... round of the seven category colours.
 CYCLE_SYMBOLS = ("circle", "square", "diamond", "triangle-up", "pentagon")
 
 
 def colour_note(groups: list[PathGroup]) -> str:
-    """A note for figures with more categories than colours (empty otherwise)."""
-    n = sum(g.key not in ("diverged", "stuck") for g in groups)
-    if n <= len(CATEGORY_COLOURS):
+    """A note for figures where groups share a colour (empty otherwise).
+
+    Points keep their registry colour, so two points can share one (the 1st
+    and 8th registered, say) even when few are drawn.
+    """
+    cats = [g for g in groups if g.key not in OUTCOME_KEYS]
+    colours = len({g.colour for g in cats})
+    if colours == len(cats):
         return ""
     return (
-        f"{n} groups share {len(CATEGORY_COLOURS)} colours: after every seven the end-marker "
+        f"{len(cats)} groups share {colours} colours: after every seven the end-marker "
         "shape changes (circle, square, diamond, ...); hover or the legend tells them apart."
     )
 
@@ -51,7 +67,8 @@ class PathGroup:
     """Runs drawn alike.
 
     Attributes:
-        key: short stable id used in trace uids (``"m0"``, ``"lr1"``, ``"diverged"``).
+        key: short stable id used in trace uids (``"m0"`` for the point with colour
+            index 0, ``"lr1"``, ``"max_steps"``, ``"not-stationary"``, ``"diverged"``).
         name: legend text.
         colour, dash, end_symbol: line colour, dash style and end-marker symbol.
         runs: indices of the runs of this group that are drawn.
@@ -135,6 +152,20 @@ def group_runs(
                 )
             )
 
+    def add_outcome(key: str, style: dict[str, str], members: np.ndarray) -> None:
+        if members.size:
+            groups.append(
+                PathGroup(
+                    key,
+                    style["legend"],
+                    style["colour"],
+                    style["dash"],
+                    style["end_symbol"],
+                    members,
+                    int(members.size),
+                )
+            )
+
     if color_by == "minimum":
         assignment = np.asarray(minima.assignment)
         if assignment.shape != (len(runs),):
@@ -143,25 +174,17 @@ def group_runs(
                 f"{len(runs)} runs; find the minima of these runs."
             )
         labels = list(minima.labels)
+        colours = np.asarray(minima.colour_index)
         for k in range(len(labels)):
             kind = str(minima.kind[k])
             name = f"{labels[k]}: {kind}, loss {_fmt(float(minima.loss[k]))}"
-            add(f"m{k}", name, rest[assignment[rest] == k], k)
-        stuck = rest[assignment[rest] < 0]
-        diverged = np.union1d(diverged, idx[assignment[idx] == -1])
-        stuck = np.setdiff1d(stuck, diverged)
-        if stuck.size:
-            groups.append(
-                PathGroup(
-                    "stuck",
-                    NOT_CONVERGED["name"],
-                    NOT_CONVERGED["colour"],
-                    NOT_CONVERGED["dash"],
-                    NOT_CONVERGED["end_symbol"],
-                    stuck,
-                    int(stuck.size),
-                )
-            )
+            cid = int(colours[k])
+            add(f"m{cid}", name, rest[assignment[rest] == k], cid)
+        diverged = np.union1d(diverged, idx[assignment[idx] == DIVERGED_LABEL])
+        unresolved = np.setdiff1d(rest[assignment[rest] == NOT_STATIONARY_LABEL], diverged)
+        spent = np.setdiff1d(rest[assignment[rest] == MAX_STEPS_LABEL], diverged)
+        add_outcome("max_steps", MAX_STEPS, spent)
+        add_outcome("not-stationary", NOT_STATIONARY, unresolved)
     elif color_by == "learning_rate":
         for k, lr in enumerate(np.unique(lrs[rest])):
             add(
@@ -176,24 +199,12 @@ def group_runs(
             add(f"s{s}", f"start {s}", rest[starts[rest] == s], k)
     else:  # status
         add("converged", "converged", rest[status[rest] == "converged"], 2)
-        stuck = rest[status[rest] == "max_steps"]
-        if stuck.size:
-            groups.append(
-                PathGroup(
-                    "stuck",
-                    NOT_CONVERGED["name"],
-                    NOT_CONVERGED["colour"],
-                    NOT_CONVERGED["dash"],
-                    NOT_CONVERGED["end_symbol"],
-                    stuck,
-                    int(stuck.size),
-                )
-            )
+        add_outcome("max_steps", MAX_STEPS, rest[status[rest] == "max_steps"])
     if diverged.size:
         groups.append(
             PathGroup(
                 "diverged",
-                DIVERGED["name"],
+                DIVERGED["legend"],
                 DIVERGED["colour"],
                 DIVERGED["dash"],
                 DIVERGED["end_symbol"],

@@ -26,13 +26,16 @@ from typing import Any
 
 import plotly.colors
 
+from ..core.minima import DIVERGED_LABEL, MAX_STEPS_LABEL, NOT_STATIONARY_LABEL, OUTCOMES
 from .build import FigureSpec
 
 __all__ = [
     "CATEGORY_COLOURS",
     "DIVERGED",
-    "NOT_CONVERGED",
+    "MAX_STEPS",
+    "NOT_STATIONARY",
     "OKABE_ITO",
+    "OUTCOME_STYLES",
     "SURFACE_SCALE",
     "add_note",
     "base_layout",
@@ -66,15 +69,41 @@ CATEGORY_COLOURS: tuple[str, ...] = (
     OKABE_ITO["yellow"],
 )
 
-#: Style of runs that diverged: neutral grey, dashed, ended by a cross.
-DIVERGED = {"colour": "#8C8C8C", "dash": "dash", "end_symbol": "x-thin-open", "name": "diverged"}
+#: Style of runs that diverged (status and label "diverged"): neutral grey, dashed, ended
+#: by a cross.
+DIVERGED = {
+    "colour": "#8C8C8C",
+    "dash": "dash",
+    "end_symbol": "x-thin-open",
+    "name": OUTCOMES[DIVERGED_LABEL],
+    "legend": "diverged",
+}
 
-#: Style of runs that spent their step budget without converging.
-NOT_CONVERGED = {
+#: Style of runs that spent their step budget without converging (status "max_steps",
+#: label :data:`~basinview.core.MAX_STEPS_LABEL`): dark grey, dotted.
+MAX_STEPS = {
     "colour": "#3B3B3B",
     "dash": "dot",
     "end_symbol": "circle-open",
-    "name": "not converged",
+    "name": OUTCOMES[MAX_STEPS_LABEL],
+    "legend": "max_steps (step budget spent)",
+}
+
+#: Style of runs whose end point is not a stationary point and could not be refined to
+#: one (label :data:`~basinview.core.NOT_STATIONARY_LABEL`): slate, dash-dot.
+NOT_STATIONARY = {
+    "colour": "#4A4A78",
+    "dash": "dashdot",
+    "end_symbol": "diamond-open",
+    "name": OUTCOMES[NOT_STATIONARY_LABEL],
+    "legend": "not stationary (end point)",
+}
+
+#: Style of each outcome label of :data:`basinview.core.OUTCOMES`.
+OUTCOME_STYLES: dict[int, dict[str, str]] = {
+    MAX_STEPS_LABEL: MAX_STEPS,
+    NOT_STATIONARY_LABEL: NOT_STATIONARY,
+    DIVERGED_LABEL: DIVERGED,
 }
 
 #: Sequential colourscale of loss values (low = dark blue, high = light yellow).
@@ -86,7 +115,12 @@ _NOTE = "#5A5A5A"
 
 
 def category_colour(i: int) -> str:
-    """Colour of category ``i`` (cycles after seven categories)."""
+    """Colour of category ``i`` (cycles after seven categories).
+
+    For critical points ``i`` is the point's colour index in the problem's
+    registry (``Minima.colour_index``), so a point keeps its colour in every
+    figure.
+    """
     return CATEGORY_COLOURS[i % len(CATEGORY_COLOURS)]
 
 
