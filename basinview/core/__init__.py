@@ -5,6 +5,7 @@ minima and curvature -> result objects (NumPy arrays and pandas tables).
 """
 
 from ._tuning import bucket, chunk_size_for, count_compilations
+from .bends import CurvedPath, bezier_points, curved_path
 from .curvature import (
     Spectrum,
     adaptive_threshold,
@@ -17,6 +18,7 @@ from .curvature import (
     stability_bound,
     standard_errors,
 )
+from .density import SpectralDensity, hessian_density
 from .descent import (
     STATUSES,
     Runs,
@@ -71,6 +73,7 @@ from .surface import (
     segment_profile,
     span_ranges,
 )
+from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 
 __all__ = [
     "ADAM",
@@ -87,6 +90,7 @@ __all__ = [
     "BasinMap",
     "BasinviewError",
     "CriticalPoint",
+    "CurvedPath",
     "FingerprintWarning",
     "LossError",
     "Minima",
@@ -94,24 +98,29 @@ __all__ = [
     "Plane",
     "Problem",
     "Profile",
+    "RunRecorder",
     "Runs",
     "Settings",
     "SettingsError",
+    "SpectralDensity",
     "Spectrum",
     "Starts",
     "StepSizeSweep",
     "Surface",
+    "TrajectoryPlane",
     "UpdateRule",
     "View",
     "adaptive_threshold",
     "axes_plane",
     "basin_map",
+    "bezier_points",
     "bucket",
     "chunk_size_for",
     "classify",
     "combine_starts",
     "compute_view",
     "count_compilations",
+    "curved_path",
     "default_plane",
     "default_tolerances",
     "descend",
@@ -122,6 +131,7 @@ __all__ = [
     "gauss_newton_matrix",
     "get_rule",
     "grid_starts",
+    "hessian_density",
     "hessian_matrix",
     "hessian_plane",
     "hessian_spectrum",
@@ -144,5 +154,6 @@ __all__ = [
     "starts_from_spec",
     "step_size_sweep",
     "through_plane",
+    "trajectory_plane",
     "use_all_cores",
 ]
