@@ -267,6 +267,13 @@ def curved_path(
     loss = evaluate_points(
         problem, p0.astype(dtype), (p1 - p0).astype(dtype), (control - p0).astype(dtype), ab
     ).astype(np.float64)
+    if not np.all(np.isfinite(loss)):
+        raise ParameterError(
+            f"the fitted curve passes through points where the loss is not finite: the fit "
+            f"diverged or left the region where the loss is defined (learning_rate={lr}). "
+            "Lower the learning rate (e.g. to a tenth) or start from another control point "
+            "(init=...)."
+        )
     ends = max(loss[0], loss[-1])
     barrier = float(max(np.nanmax(loss) - ends, 0.0)) if np.isfinite(ends) else float("nan")
     segment = segment_profile(problem, p0, p1, resolution=res, extend=0.0)

@@ -84,6 +84,10 @@ class RunRecorder:
     def problem(self) -> Problem:
         return self._problem
 
+    def __len__(self) -> int:
+        """Checkpoints stored so far (the most recent parameters not counted)."""
+        return len(self._stored)
+
     @property
     def stride(self) -> int:
         """Current distance in steps between stored checkpoints."""
