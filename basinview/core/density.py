@@ -10,10 +10,11 @@ smoothed with a Gaussian kernel and multiplied by ``n`` it is a density of
 eigenvalue counts. The same probes give Hutchinson's trace estimate
 ``z^T H z = n * T[0, 0]``.
 
-Everything (probes, Lanczos steps, the small eigen-decompositions) runs in
-one compiled call; the point and the seed are traced, so another point or
-seed never recompiles. Memory: one ``(m, n)`` Lanczos basis at a time (the
-probes run one after another inside the call).
+All Lanczos steps of all probes and the small ``m x m`` eigen-decompositions
+run in one compiled call; the point and the probes (drawn with NumPy on the
+host) are data, so another point or seed never recompiles. Memory: one
+``(m, n)`` Lanczos basis at a time (the probes run one after another inside
+the call).
 
 Caution: the density is smoothed by a kernel of width ``width``; features
 narrower than that (a cluster of near-zero eigenvalues, two close
@@ -117,7 +118,11 @@ class SpectralDensity:
 
 
 def _slq_fn(problem: Problem, probes: int, m: int) -> Any:
-    """Compiled: ``probes`` Rademacher probes, ``m`` Lanczos steps each, one after another."""
+    """Compiled: ``m`` Lanczos steps from each of ``probes`` probes, one after another.
+
+    Returns per probe the quadrature nodes, weights, residual bounds
+    ``|beta_m S[m-1, k]|`` and ``alpha_0 = q0' H q0``.
+    """
 
     def build() -> Any:
         grad = jax.grad(problem.flat_loss)
@@ -149,19 +154,16 @@ def _slq_fn(problem: Problem, probes: int, m: int) -> Any:
                 return basis, alpha.at[j].set(a), beta.at[j].set(jnp.where(ok, b, 0))
 
             _, alpha, beta = jax.lax.fori_loop(0, m, body, (basis, alpha, beta))
+            # Gauss quadrature of the probe's spectral measure: T = S diag(nodes) S^T
             off = beta[: m - 1]
             tri = jnp.diag(alpha) + jnp.diag(off, 1) + jnp.diag(off, -1)
-            vals, vecs = jnp.linalg.eigh(tri)
-            return vals, vecs[0] ** 2, jnp.abs(beta[m - 1] * vecs[m - 1]), alpha[0]
+            nodes, vecs = jnp.linalg.eigh(tri)
+            resid = jnp.abs(beta[m - 1] * vecs[m - 1])
+            return nodes, vecs[0] ** 2, resid, alpha[0]
 
-        def run(theta: jax.Array, seed: jax.Array, data: Any) -> tuple[jax.Array, ...]:
-            keys = jax.random.split(jax.random.PRNGKey(seed), probes)
-
-            def probe(key: jax.Array) -> tuple[jax.Array, ...]:
-                z = jax.random.rademacher(key, (n,), dtype=theta.dtype)
-                return lanczos(theta, z / jnp.sqrt(jnp.asarray(n, theta.dtype)), data)
-
-            return jax.lax.map(probe, keys)
+        def run(theta: jax.Array, probes_: jax.Array, data: Any) -> tuple[jax.Array, ...]:
+            scale = 1 / jnp.sqrt(jnp.asarray(n, theta.dtype))
+            return jax.lax.map(lambda z: lanczos(theta, z * scale, data), probes_)
 
         problem.check_differentiable()
         return jax.jit(run)
@@ -238,7 +240,7 @@ def hessian_density(
         probes: Rademacher probes (static; more probes, less sampling error).
         steps: Lanczos steps per probe (static; capped at ``n``). ``m``
             steps integrate polynomials of degree ``2m - 1`` exactly.
-        seed: seed of the probes (traced).
+        seed: seed of the probes (drawn with NumPy on the host: never recompiles).
         width: standard deviation of the Gaussian kernel that smooths the
             density (default: 1/200 of the range of the nodes).
         grid_size: points of the density grid.
@@ -278,8 +280,11 @@ def hessian_density(
             "choose a point where the loss is finite, e.g. a converged run's end point."
         )
     fn = _slq_fn(problem, n_probes, m)
+    # Rademacher probes drawn on the host (NumPy, seeded): no random-number program to compile
+    rng = np.random.default_rng(int(seed))
+    z = rng.integers(0, 2, size=(n_probes, n), dtype=np.int8).astype(problem.dtype) * 2 - 1
     with loss_runtime_errors(problem, "the Hessian density"):
-        out = fn(point, jnp.asarray(int(seed), jnp.int32), problem.data)
+        out = fn(point, jnp.asarray(z, problem.dtype), problem.data)
     nodes, weights, resid, alpha0 = (np.asarray(x, dtype=np.float64) for x in out)
     if not (np.all(np.isfinite(nodes)) and np.all(np.isfinite(weights))):
         raise ParameterError(
