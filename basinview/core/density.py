@@ -19,9 +19,11 @@ the call).
 Caution: the density is smoothed by a kernel of width ``width``; features
 narrower than that (a cluster of near-zero eigenvalues, two close
 outliers) are merged. Weights of single eigenvalues are random (a probe
-sees eigenvalue ``i`` with weight ``(u_i . z)^2 / n``), so counts read off
-the density, the outliers' counts and the negative mass carry sampling
-error that shrinks like ``1 / sqrt(probes * n)``.
+sees eigenvalue ``i`` with weight ``(u_i . z)^2 / n``): the count an
+outlier stands for is uncertain by about ``sqrt(2 / probes)`` eigenvalues,
+while shares of many eigenvalues (the negative mass) have errors that
+shrink like ``1 / sqrt(probes * n)``. Ritz values that have not converged
+sit between eigenvalues; only converged ones are reported as outliers.
 """
 
 from __future__ import annotations
