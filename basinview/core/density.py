@@ -58,8 +58,9 @@ class SpectralDensity:
         width: standard deviation of the Gaussian smoothing kernel.
         trace: Hutchinson's estimate of the trace (mean over probes).
         trace_probes: each probe's ``z^T H z``.
-        outliers: table of isolated, converged eigenvalues (``value``,
-            ``count``: eigenvalues it stands for, ``probes``: probes that found it).
+        outliers: table of converged eigenvalues far outside the bulk
+            (``value``, ``count``: eigenvalues it stands for, ``probes``: probes
+            that found it); see ``gap`` and ``tail`` of :func:`hessian_density`.
         negative_mass: estimated share of eigenvalues below zero (below
             ``-zero_tolerance``, to ignore rounding of zero eigenvalues).
         zero_tolerance: the threshold used for ``negative_mass``.
@@ -173,10 +174,22 @@ def _slq_fn(problem: Problem, probes: int, m: int) -> Any:
     return problem.compiled(("hessian-density", probes, m), build)
 
 
+def _bulk(flat: np.ndarray, w: np.ndarray, tail: float) -> tuple[float, float]:
+    """Shortest interval of sorted nodes holding at least ``1 - tail`` of the weight."""
+    cum = np.concatenate([[0.0], np.cumsum(w)])
+    need = cum[-1] * (1 - tail)
+    ends = np.searchsorted(cum, cum[:-1] + need - 1e-12, side="left") - 1
+    ok = ends < flat.size
+    starts = np.flatnonzero(ok)
+    widths = flat[ends[ok]] - flat[starts]
+    k = int(np.argmin(widths))
+    return float(flat[starts[k]]), float(flat[ends[ok][k]])
+
+
 def _outliers(
-    nodes: np.ndarray, weights: np.ndarray, resid: np.ndarray, n: int, gap: float
+    nodes: np.ndarray, weights: np.ndarray, resid: np.ndarray, n: int, gap: float, tail: float
 ) -> pd.DataFrame:
-    """Converged Ritz values outside the heaviest cluster of nodes (clusters split at wide gaps)."""
+    """Converged Ritz values far outside the bulk (the shortest interval of most of the mass)."""
     empty = pd.DataFrame({"value": [], "count": [], "probes": []})
     p = nodes.shape[0]
     probe_of = np.repeat(np.arange(p), nodes.shape[1])
@@ -188,28 +201,23 @@ def _outliers(
     spread = float(flat[-1] - flat[0]) if flat.size else 0.0
     if spread <= 0:
         return empty
-    cuts = np.flatnonzero(np.diff(flat) > gap * spread) + 1
-    groups = np.split(np.arange(flat.size), cuts)
-    bulk = max(range(len(groups)), key=lambda g: w[groups[g]].sum())
+    lo, hi = _bulk(flat, w, tail)
     scale = float(np.max(np.abs(flat)))
-    rows = []
-    for g, members in enumerate(groups):
-        if g == bulk:
-            continue
-        # one eigenvalue seen by several probes: nodes that agree closely
-        sub = members[r[members] <= 1e-3 * scale]
-        if sub.size == 0:
-            continue
-        for piece in np.split(sub, np.flatnonzero(np.diff(flat[sub]) > 1e-3 * scale) + 1):
-            rows.append(
-                {
-                    "value": float(np.average(flat[piece], weights=w[piece])),
-                    "count": float(n * w[piece].sum()),
-                    "probes": int(np.unique(probe_of[piece]).size),
-                }
-            )
-    if not rows:
+    far = (flat < lo - gap * spread) | (flat > hi + gap * spread)
+    # converged only: a Ritz value within 1e-3 of the spectral radius of an eigenvalue
+    sub = np.flatnonzero(far & (r <= 1e-3 * scale))
+    if sub.size == 0:
         return empty
+    rows = []
+    # one eigenvalue seen by several probes: nodes that agree closely
+    for piece in np.split(sub, np.flatnonzero(np.diff(flat[sub]) > 1e-3 * scale) + 1):
+        rows.append(
+            {
+                "value": float(np.average(flat[piece], weights=w[piece])),
+                "count": float(n * w[piece].sum()),
+                "probes": int(np.unique(probe_of[piece]).size),
+            }
+        )
     return pd.DataFrame(rows).sort_values("value", ascending=False, ignore_index=True)
 
 
@@ -233,6 +241,7 @@ def hessian_density(
     width: float | None = None,
     grid_size: int = 1001,
     gap: float = 0.05,
+    tail: float = 0.05,
 ) -> SpectralDensity:
     """Hessian eigenvalue density at ``theta`` by stochastic Lanczos quadrature.
 
@@ -246,8 +255,10 @@ def hessian_density(
         width: standard deviation of the Gaussian kernel that smooths the
             density (default: 1/200 of the range of the nodes).
         grid_size: points of the density grid.
-        gap: nodes separated from the heaviest cluster by more than
-            ``gap`` times the range of the nodes, and converged, are outliers.
+        gap, tail: the bulk is the shortest interval that holds ``1 - tail``
+            of the estimated mass; converged Ritz values farther than ``gap``
+            times the range of the nodes outside it are reported as outliers
+            (so at most about ``tail * n`` eigenvalues can be outliers).
 
     Returns:
         A :class:`SpectralDensity`.
@@ -270,6 +281,8 @@ def hessian_density(
     n_grid = _check_int(grid_size, "grid_size", 16, 100_000)
     if not (isinstance(gap, (int, float)) and 0 < gap < 1):
         raise ParameterError(f"gap must be a number between 0 and 1; got {gap!r}.")
+    if not (isinstance(tail, (int, float)) and 0 <= tail < 1):
+        raise ParameterError(f"tail must be a number from 0 to below 1; got {tail!r}.")
     if width is not None and not (
         isinstance(width, (int, float)) and np.isfinite(width) and width > 0
     ):
@@ -317,7 +330,7 @@ def hessian_density(
         width=sigma,
         trace=float(n * alpha0.mean()),
         trace_probes=n * alpha0,
-        outliers=_outliers(nodes, weights, resid, n, float(gap)),
+        outliers=_outliers(nodes, weights, resid, n, float(gap), float(tail)),
         negative_mass=negative,
         zero_tolerance=zero_tol,
         settings={"probes": n_probes, "steps": m, "seed": int(seed)},

@@ -324,8 +324,14 @@ def density_figure(
     sub = f"{neg_text}; trace ≈ {density.trace:.4g}" + (f" ± {tse:.2g}" if np.isfinite(tse) else "")
     layout = base_layout(title or "Hessian eigenvalue density", sub)
     layout["xaxis"] = {"title": {"text": "eigenvalue"}}
-    layout["yaxis"] = {"title": {"text": "eigenvalues per unit (log scale)"}, "type": "log"}
-    layout["legend"].update({"x": 0.99, "y": 0.99, "xanchor": "right", "yanchor": "top"})
+    layout["yaxis"] = {
+        "title": {"text": "eigenvalues per unit (log scale)"},
+        "type": "log",
+        "exponentformat": "power",
+    }
+    layout["legend"].update(
+        {"orientation": "h", "x": 0, "y": 1.0, "xanchor": "left", "yanchor": "bottom"}
+    )
     fig.update_layout(layout)
     s = density.settings
     add_note(
