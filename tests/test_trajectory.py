@@ -15,6 +15,7 @@ from basinview.core import (
     RunRecorder,
     count_compilations,
     evaluate_surface,
+    plane_from_spec,
     trajectory_plane,
 )
 
@@ -117,6 +118,14 @@ def test_a_run_in_a_plane_has_no_off_plane_distance_and_all_the_variance():
     with jax.enable_x64(True):
         wild = [final + rng.standard_normal(n) for _ in range(8)] + [final]
         assert "Caution" in trajectory_plane(problem, wild).caution
+
+
+def test_the_plane_can_be_rebuilt_from_its_spec(trained):
+    problem, recorder, _ = trained
+    plane = trajectory_plane(problem, recorder).plane
+    again = plane_from_spec(problem, plane.spec)
+    np.testing.assert_allclose(again.origin, plane.origin, atol=1e-6)
+    np.testing.assert_allclose(again.directions, plane.directions, atol=1e-5)
 
 
 def test_recorder_keeps_evenly_spaced_checkpoints_in_bounded_memory(trained):

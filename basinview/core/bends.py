@@ -43,7 +43,7 @@ def bezier_points(p0: np.ndarray, control: np.ndarray, p1: np.ndarray, t: Any) -
     """Points ``phi(t)`` of the quadratic Bezier curve (``t`` any shape; adds a last axis).
 
     >>> bezier_points(np.zeros(2), np.array([0.0, 2.0]), np.array([2.0, 0.0]), 0.5).tolist()
-    [1.0, 1.0]
+    [0.5, 1.0]
     """
     t = np.asarray(t, dtype=np.float64)[..., None]
     return (1 - t) ** 2 * p0 + 2 * t * (1 - t) * control + t**2 * p1

@@ -303,7 +303,11 @@ def trajectory_plane(
         f"PC1: offset from the final checkpoint ({100 * explained[0]:.1f}% of variance)",
         f"PC2: offset from the final checkpoint ({100 * explained[1]:.1f}% of variance)",
     )
-    spec = {"kind": "trajectory", "checkpoints": int(k), "explained": explained.tolist()}
+    # Recorded as the plane through the final checkpoint and one step along each
+    # direction: plane_from_spec (and so Settings) rebuilds the same origin and
+    # directions, since those directions are orthonormal.
+    points = [final, final + d1, final + d2]
+    spec = {"kind": "through", "points": [[float(x) for x in p] for p in points]}
     dtype = problem.dtype
     plane = Plane(final.astype(dtype), d1.astype(dtype), d2.astype(dtype), titles, spec)
     diff = flats - final
