@@ -89,6 +89,26 @@ def test_trajectory_figure_shows_the_run_and_the_variance(results):
         F.trajectory_figure(other, track)
 
 
+def test_basinview_runs_from_the_same_start_retrace_a_plain_gradient_descent_loop(results):
+    problem, track, surface, _, _ = results
+    # the user's loop above is plain gradient descent at 0.05 from the first checkpoint;
+    # descend with the same rule and rate from there must retrace it (two implementations)
+    start = problem.flatten(jnp.array([0.3, 1.4, 0.8]))
+    runs = core.descend(
+        problem, start[None], learning_rate=0.05, steps=59, plane=track.plane, grad_tol=0.0
+    )
+    fig = F.trajectory_figure(surface, track, runs)
+    drawn = next(t for t in fig.data if t.uid == "trajectory-compared-0")
+    path = np.stack([np.asarray(drawn.x), np.asarray(drawn.y)], axis=1)
+    np.testing.assert_allclose(path[track.steps, 0], track.a, atol=1e-4)
+    np.testing.assert_allclose(path[track.steps, 1], track.b, atol=1e-4)
+    assert "lr 0.05" in drawn.name
+    go.Figure(fig.to_dict())  # validates
+    other = core.descend(problem, start[None], learning_rate=0.05, steps=5)
+    with pytest.raises(core.ParameterError, match="another plane"):
+        F.trajectory_figure(surface, track, other)
+
+
 def test_curved_path_figure_marks_both_barriers(results):
     path = results[3]
     fig = F.curved_path_figure(path)

@@ -16,6 +16,7 @@ import plotly.graph_objects as go
 
 from ..core.bends import CurvedPath
 from ..core.density import SpectralDensity
+from ..core.descent import Runs
 from ..core.errors import ParameterError
 from ..core.surface import Surface
 from ..core.trajectory import TrajectoryPlane
@@ -34,14 +35,26 @@ from .style import (
 __all__ = ["curved_path_figure", "density_figure", "trajectory_figure"]
 
 
+MAX_COMPARED = 8
+"""At most this many of basinview's own runs are drawn beside the user's run."""
+
+
 def trajectory_figure(
-    surface: Surface, track: TrajectoryPlane, *, levels: str = "auto", title: str | None = None
+    surface: Surface,
+    track: TrajectoryPlane,
+    runs: Runs | None = None,
+    *,
+    levels: str = "auto",
+    title: str | None = None,
 ) -> go.Figure:
     """The loss around the user's run, on the plane of its principal directions.
 
     Args:
         surface: :func:`~basinview.core.evaluate_surface` on ``track.plane``.
         track: the run, from :func:`~basinview.core.trajectory_plane`.
+        runs: optional runs of :func:`~basinview.core.descend` recorded on
+            ``track.plane`` (e.g. from the run's first checkpoint), drawn
+            dashed for comparison (at most :data:`MAX_COMPARED`).
         levels: ``"auto"``, ``"linear"`` or ``"log"`` (see :func:`choose_levels`).
         title: figure title.
     """
@@ -103,6 +116,8 @@ def trajectory_figure(
             uid=uid("trajectory", "run"),
         )
     )
+    if runs is not None:
+        _add_compared_runs(fig, runs, track)
     fig.add_trace(
         {
             "type": "scatter",
@@ -159,6 +174,43 @@ def trajectory_figure(
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     return fig.figure()
+
+
+def _add_compared_runs(fig: FigureSpec, runs: Runs, track: TrajectoryPlane) -> None:
+    plane = track.plane
+    same = runs.plane is not None and all(
+        np.array_equal(getattr(runs.plane, k), getattr(plane, k)) for k in ("origin", "d1", "d2")
+    )
+    if not same:
+        raise ParameterError(
+            "the runs were recorded on another plane than the run's; use "
+            "descend(problem, ..., plane=track.plane)."
+        )
+    hover = (
+        "%{meta}<br>step %{customdata[0]:d}<br>loss %{customdata[1]:.5g}<br>"
+        "off the plane %{customdata[2]:.3g}<extra></extra>"
+    )
+    for r in range(min(len(runs), MAX_COMPARED)):
+        last = int(runs.stop_step[r])
+        path = runs.path[r, : last + 1]
+        steps = np.arange(last + 1)
+        custom = np.stack([steps, runs.losses[r, : last + 1], runs.off_plane[r, : last + 1]], 1)
+        lr = float(runs.hyper["learning_rate"][r]) if "learning_rate" in runs.hyper else None
+        name = f"basinview {runs.rule}" + (f", lr {lr:.3g}" if lr is not None else "")
+        fig.add_trace(
+            {
+                "type": "scatter",
+                "x": path[:, 0],
+                "y": path[:, 1],
+                "mode": "lines",
+                "line": {"color": category_colour(r + 1), "width": 2, "dash": "dash"},
+                "customdata": custom,
+                "meta": name,
+                "hovertemplate": hover,
+                "name": f"{name} ({runs.status[r]})",
+                "uid": uid("trajectory", "compared", r),
+            }
+        )
 
 
 def curved_path_figure(path: CurvedPath, *, title: str | None = None) -> go.Figure:
