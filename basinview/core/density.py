@@ -12,9 +12,9 @@ eigenvalue counts. The same probes give Hutchinson's trace estimate
 
 All Lanczos steps of all probes and the small ``m x m`` eigen-decompositions
 run in one compiled call; the point and the probes (drawn with NumPy on the
-host) are data, so another point or seed never recompiles. Memory: one
-``(m, n)`` Lanczos basis at a time (the probes run one after another inside
-the call).
+host) are data, so another point or seed never recompiles. Memory: the
+``(probes, n)`` probes and one ``(m, n)`` Lanczos basis at a time (the
+probes run one after another inside the call).
 
 Caution: the density is smoothed by a kernel of width ``width``; features
 narrower than that (a cluster of near-zero eigenvalues, two close
