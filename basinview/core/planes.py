@@ -266,11 +266,7 @@ def random_plane(
     except ParameterError as exc:
         if normalise == "none":
             raise
-        zero = [
-            leaf.name
-            for leaf in problem.flattener.leaves
-            if not np.any(theta[leaf.start : leaf.stop])
-        ]
+        zero = [leaf.name for leaf in problem.flattener.leaves if not np.any(theta[leaf.start : leaf.stop])]
         where = f" (zero at the origin: {zero[:8]})" if zero else ""
         raise ParameterError(
             f"{exc} normalise={normalise!r} gives each leaf the size of the origin's leaf, so "

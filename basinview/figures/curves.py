@@ -186,7 +186,9 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
         if "stability_ratio" in table
         else np.full(len(table), np.nan)
     )
-    ratio_text = np.array([f"{r:.3g}" if np.isfinite(r) else "n/a" for r in ratio], dtype=object)
+    ratio_text = np.array(
+        [f"{r:.3g}" if np.isfinite(r) else "n/a" for r in ratio], dtype=object
+    )
     fig = _two_rows()
     edges = _edges(rates)
     finite = values[np.isfinite(values)]
