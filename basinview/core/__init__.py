@@ -18,6 +18,7 @@ from .analysis import (
     compute_sweep,
     compute_view,
 )
+from .bends import CurvedPath, bezier_points, curved_path
 from .curvature import (
     Spectrum,
     adaptive_threshold,
@@ -31,6 +32,7 @@ from .curvature import (
     stability_bound,
     standard_errors,
 )
+from .density import SpectralDensity, hessian_density
 from .descent import (
     STATUSES,
     Runs,
@@ -98,6 +100,7 @@ from .surface import (
     segment_profile,
     span_ranges,
 )
+from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 from .view import ViewSpec, upgrade_settings
 
 __all__ = [
@@ -119,6 +122,7 @@ __all__ = [
     "BasinviewError",
     "CriticalPoint",
     "CriticalPointRegistry",
+    "CurvedPath",
     "FingerprintWarning",
     "LossError",
     "Minima",
@@ -129,13 +133,16 @@ __all__ = [
     "Problem",
     "Profile",
     "Refinement",
+    "RunRecorder",
     "Runs",
     "Settings",
     "SettingsError",
+    "SpectralDensity",
     "Spectrum",
     "Starts",
     "StepSizeSweep",
     "Surface",
+    "TrajectoryPlane",
     "UpdateRule",
     "View",
     "ViewSpec",
@@ -143,6 +150,7 @@ __all__ = [
     "analyse",
     "axes_plane",
     "basin_map",
+    "bezier_points",
     "bucket",
     "chunk_size_for",
     "classify",
@@ -156,6 +164,7 @@ __all__ = [
     "compute_view",
     "count_compilations",
     "critical_points",
+    "curved_path",
     "default_plane",
     "default_tolerances",
     "descend",
@@ -166,6 +175,7 @@ __all__ = [
     "gauss_newton_matrix",
     "get_rule",
     "grid_starts",
+    "hessian_density",
     "hessian_matrix",
     "hessian_plane",
     "hessian_spectrum",
@@ -190,6 +200,7 @@ __all__ = [
     "starts_from_spec",
     "step_size_sweep",
     "through_plane",
+    "trajectory_plane",
     "upgrade_record",
     "upgrade_settings",
     "use_all_cores",

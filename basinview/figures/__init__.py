@@ -12,6 +12,7 @@ and descent paths leave the plane (hover shows how far).
 
 from .basins import basin_figure, profile_figure
 from .curves import REGIME_COLOURS, loss_curves_figure, step_size_figure
+from .instruments import curved_path_figure, density_figure, trajectory_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
 from .slices import relief_figure, slice_caution, slice_figure
@@ -26,10 +27,14 @@ __all__ = [
     "Levels",
     "basin_figure",
     "choose_levels",
+    "coordinate_shift",
+    "curved_path_figure",
+    "density_figure",
     "loss_curves_figure",
     "profile_figure",
     "relief_figure",
     "slice_caution",
     "slice_figure",
     "step_size_figure",
+    "trajectory_figure",
 ]
