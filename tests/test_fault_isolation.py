@@ -1,7 +1,7 @@
 """Fault isolation: faults injected into batches, grids and losses stay where they are.
 
 Faults injected here, and how many (``FAULTS`` below is the ledger; each test
-asserts its own counts, so the table in DEVELOPERS.md is checked data):
+asserts its own counts, so the table in docs/testing.md is checked data):
 
 * runs that diverge (learning rate far beyond the stability bound), runs that
   start where the loss is NaN or inf, and runs that walk into such a region
@@ -427,12 +427,12 @@ def test_mixed_float32_batches_equal_the_reference_to_rounding():
     assert ledger["diverged"] >= ledger["examples"]
 
 
-def test_fault_ledger_is_listed_in_developers_md():
+def test_fault_ledger_is_listed_in_the_testing_docs():
     from pathlib import Path
 
-    text = (Path(__file__).resolve().parents[1] / "DEVELOPERS.md").read_text()
+    text = (Path(__file__).resolve().parents[1] / "docs" / "testing.md").read_text()
     missing = [key for key in FAULTS if f"`{key}`" not in text]
-    assert not missing, f"add the fault counts {missing} to DEVELOPERS.md"
+    assert not missing, f"add the fault counts {missing} to docs/testing.md"
 
 
 if __name__ == "__main__":

@@ -31,7 +31,7 @@ def bad_inputs_markdown() -> str:
         "",
         "Generated from `tests/test_bad_inputs.py` by `python -m tools.make_docs`; do not edit by",
         "hand. Every row is a test: the bad input gives the listed error, whose message names",
-        "the problem and says the fix, and nothing the user had is changed (DEVELOPERS.md,",
+        "the problem and says the fix, and nothing the user had is changed (docs/testing.md,",
         '"Bad-input catalogue and fault isolation").',
         "",
     ]
