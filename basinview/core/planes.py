@@ -20,7 +20,7 @@ from typing import Any
 import numpy as np
 
 from .errors import ParameterError
-from .problem import Problem
+from .problem import Problem, require_plane
 
 __all__ = [
     "Plane",
@@ -149,6 +149,7 @@ def axes_plane(problem: Problem, x: str, y: str, *, origin: Any = None) -> Plane
 
     Plane coordinates are then offsets of the two coordinates from the origin.
     """
+    require_plane(problem, "axes_plane")
     if x == y:
         raise ParameterError(
             f"the two plane coordinates must differ; got {x!r} twice. Choose two "
@@ -235,6 +236,7 @@ def random_plane(
         Visualizing the loss landscape of neural nets. NeurIPS.
         arXiv:1712.09913.
     """
+    require_plane(problem, "random_plane")
     if normalise not in NORMALISATIONS:
         raise ParameterError(f"normalise must be one of {NORMALISATIONS}; got {normalise!r}.")
     theta, origin_list = _origin(problem, origin)
@@ -283,6 +285,7 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     ``d1``, so that distances are not distorted and ``p2`` lies at
     ``(project(p2))`` with ``b > 0``.
     """
+    require_plane(problem, "through_plane")
     pts = [
         problem.flatten(p, what=f"point p{i}").astype(np.float64)
         for i, p in enumerate((p0, p1, p2))
@@ -318,6 +321,7 @@ def hessian_plane(
     """
     from .curvature import hessian_plane_impl
 
+    require_plane(problem, "hessian_plane")
     return hessian_plane_impl(problem, origin=origin, method=method, seed=seed)
 
 

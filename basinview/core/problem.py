@@ -14,6 +14,7 @@ import functools
 import hashlib
 import inspect
 import re
+import warnings
 from collections.abc import Callable, Hashable, Iterator
 from typing import Any
 
@@ -22,9 +23,17 @@ import jax.numpy as jnp
 import numpy as np
 
 from .errors import LossError, ParameterError
+from .lint import lint_ignored, lint_loss
 from .pytrees import Flattener, make_flattener
 
-__all__ = ["REDUCTIONS", "Problem", "accumulate_rows", "loss_name", "loss_runtime_errors"]
+__all__ = [
+    "REDUCTIONS",
+    "Problem",
+    "accumulate_rows",
+    "loss_name",
+    "loss_runtime_errors",
+    "require_plane",
+]
 
 REDUCTIONS = ("mean", "sum")
 """How a loss combines its rows: ``"mean"`` (e.g. ``jnp.mean``) or ``"sum"``."""
@@ -198,6 +207,16 @@ class Problem:
             one; with ``"sum"`` it would be counted once per chunk, so leave
             such terms out or use ``"mean"``. The contract is checked on the
             first rows of the data when the problem is built.
+        lint: run the loss lint (:mod:`basinview.core.lint`) once now: True
+            (default), False, or ``{"ignore": ["row-broadcast", ...]}`` to
+            skip checks by name. Each finding is a
+            :class:`~basinview.core.errors.LossLintWarning` subclass.
+
+    ``params`` may also be an equinox module (its floating arrays are
+    explored, the rest is held fixed) or a flax.nnx module (its
+    ``nnx.Param`` variables); the loss is always called with a whole model
+    (see :mod:`basinview.core.models`). Parameters are float32 or float64;
+    half precision is refused with an error that says how to convert.
 
     The problem is immutable. Compiled functions are built once per problem
     and per static configuration and reused; changing only values (parameters,
@@ -223,6 +242,7 @@ class Problem:
         name: str | None = None,
         data_chunk_rows: int | None = None,
         reduction: str | None = None,
+        lint: Any = True,
     ) -> None:
         if not callable(loss):
             raise LossError(
@@ -230,6 +250,7 @@ class Problem:
                 f"{type(loss).__name__}."
             )
         _check_signature(loss, len(data))
+        ignore = lint_ignored(lint)
         flattener, theta0 = make_flattener(params)
         self._loss = loss
         self._params = params
@@ -243,6 +264,9 @@ class Problem:
         self._theta0 = theta0
         theta0.setflags(write=False)
         self._check_loss()
+        if ignore is not None:
+            for finding in lint_loss(loss, flattener, self._data, name=self._name, ignore=ignore):
+                warnings.warn(finding, stacklevel=2)
 
     # ------------------------------------------------------------------ basics
     @property
@@ -278,6 +302,11 @@ class Problem:
     def labels(self) -> tuple[str, ...]:
         """One readable label per flat coordinate, e.g. ``layer1.bias[3]``."""
         return self._flat.labels
+
+    @property
+    def kind(self) -> str:
+        """Where the parameters come from: ``"pytree"``, ``"equinox"`` or ``"nnx"``."""
+        return self._flat.kind
 
     @property
     def dtype(self) -> np.dtype:
@@ -534,3 +563,24 @@ def _check_signature(loss: Callable[..., Any], n_data: int) -> None:
             "in the order the loss expects, or wrap the loss, e.g. "
             "lambda params, x, y: my_loss(x, y, params)."
         ) from None
+
+
+def require_plane(problem: Problem, what: str) -> None:
+    """Raise a :class:`ParameterError` that can be followed if ``problem`` has one parameter.
+
+    Called wherever a plane is needed (``what`` names the caller, e.g.
+    ``"axes_plane"``); descent, step-size sweeps, minima and profiles need
+    no plane and work with one parameter.
+    """
+    if problem.size >= 2:
+        return
+    label = problem.labels[0]
+    raise ParameterError(
+        f"{what} needs a plane of two coordinates, but this problem has one parameter "
+        f"({label!r}): there is no 2-D slice to draw. Without a plane you can still use "
+        "descend(problem, starts) (its paths record the parameter itself), "
+        "step_size_sweep, find_minima and segment_profile(problem, a, b) for the loss "
+        "along the line between two values; the Explorer and `python -m basinview "
+        "report` draw planes, so give them a model with at least two parameters (e.g. "
+        "add an intercept, {'w': w, 'b': 0.0})."
+    )
