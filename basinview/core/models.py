@@ -102,7 +102,8 @@ def _nnx_view(nnx: Any, params: Any) -> ModelView | None:
     state_def = jax.tree_util.tree_structure(state)
 
     def pure(st: Any) -> Any:
-        return st.to_pure_dict()
+        to_pure = getattr(nnx, "to_pure_dict", None)  # newer flax; older: a State method
+        return to_pure(st) if to_pure is not None else st.to_pure_dict()
 
     arrays = pure(state)
     if jax.tree_util.tree_structure(arrays).num_leaves != state_def.num_leaves:
