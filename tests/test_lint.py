@@ -57,7 +57,9 @@ def test_row_broadcast_fires_on_the_classic_mistake_and_not_on_ols(longley):
     x, y = longley
     w0 = np.zeros(x.shape[1], np.float32)
     xs, ys = x.astype(np.float32), y.astype(np.float32)
-    with pytest.warns(RowBroadcastWarning, match=r"\(16, 16\).*two axes of the data's 16 rows.*pred\[:, 0\]"):
+    with pytest.warns(
+        RowBroadcastWarning, match=r"\(16, 16\).*two axes of the data's 16 rows.*pred\[:, 0\]"
+    ):
         bad = Problem(ols_broadcast, w0, xs, ys)
     prob, found = findings(ols, w0, xs, ys)
     assert found == []
@@ -87,7 +89,12 @@ def test_pairwise_data_and_gram_matrices_are_not_flagged(longley):
 
 def test_every_check_can_be_silenced_by_name_flag_or_filter(longley):
     x, y = longley
-    args = (ols_broadcast, np.zeros(x.shape[1], np.float32), x.astype(np.float32), y.astype(np.float32))
+    args = (
+        ols_broadcast,
+        np.zeros(x.shape[1], np.float32),
+        x.astype(np.float32),
+        y.astype(np.float32),
+    )
     assert findings(*args, lint={"ignore": ["row-broadcast"]})[1] == []
     assert findings(*args, lint=False)[1] == []
     with warnings.catch_warnings():
@@ -157,16 +164,26 @@ def test_discarded_precision(x64, longley):
     def rounds(w, x, y):
         return jnp.mean((y - x @ w.astype(jnp.int32)) ** 2)
 
-    with pytest.warns(DiscardedPrecisionWarning, match="to integers.*gradient through them is zero"):
+    with pytest.warns(
+        DiscardedPrecisionWarning, match="to integers.*gradient through them is zero"
+    ):
         Problem(rounds, np.zeros(x.shape[1]), x, y)
 
 
 def test_mixed_precision(x64, longley):
     x, y = longley  # float64 under x64
-    with pytest.warns(MixedPrecisionWarning, match=r"computes in float64 \(data x, y are float64\) but the parameters are float32"):
+    with pytest.warns(
+        MixedPrecisionWarning,
+        match=r"computes in float64 \(data x, y are float64\) but the parameters are float32",
+    ):
         Problem(ols, np.zeros(x.shape[1], np.float32), x, y)
     assert findings(ols, np.zeros(x.shape[1]), x, y)[1] == []
-    assert findings(ols, np.zeros(x.shape[1], np.float32), x.astype(np.float32), y.astype(np.float32))[1] == []
+    assert (
+        findings(ols, np.zeros(x.shape[1], np.float32), x.astype(np.float32), y.astype(np.float32))[
+            1
+        ]
+        == []
+    )
 
     def split(p, x, y):
         return jnp.mean((y - x[:, 0] * p["b"] - x[:, 1:] @ p["w"]) ** 2)
@@ -184,7 +201,9 @@ def test_integer_data_beyond_float32_digits():
     def trend(p, t, y):
         return jnp.mean((p["a"] + p["b"] * 1e-7 * t - y) ** 2)
 
-    with pytest.warns(IntegerDataWarning, match=r"integer data t to float32.*2\*\*24 = 16777216.*reaches 33554471"):
+    with pytest.warns(
+        IntegerDataWarning, match=r"integer data t to float32.*2\*\*24 = 16777216.*reaches 33554471"
+    ):
         Problem(trend, {"a": 0.0, "b": 0.0}, ids, target)
     assert findings(trend, {"a": 0.0, "b": 0.0}, ids - 2**25, target)[1] == []
 

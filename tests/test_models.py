@@ -48,12 +48,15 @@ def _compare(model_prob, plain_prob, x_label, y_label, start_scale=0.1):
     order = np.array([plain_prob.index(lab) for lab in model_prob.labels])
     np.testing.assert_array_equal(model_prob.theta0, plain_prob.theta0[order])
     np.testing.assert_allclose(
-        float(model_prob.value(model_prob.theta0)), float(plain_prob.value(plain_prob.theta0)),
+        float(model_prob.value(model_prob.theta0)),
+        float(plain_prob.value(plain_prob.theta0)),
         rtol=1e-6,
     )
     np.testing.assert_allclose(
-        model_prob.grad(model_prob.theta0), plain_prob.grad(plain_prob.theta0)[order],
-        rtol=1e-5, atol=1e-7,
+        model_prob.grad(model_prob.theta0),
+        plain_prob.grad(plain_prob.theta0)[order],
+        rtol=1e-5,
+        atol=1e-7,
     )
     surfaces = [
         evaluate_surface(p, axes_plane(p, x_label, y_label), span=0.5, resolution=7)
@@ -63,7 +66,13 @@ def _compare(model_prob, plain_prob, x_label, y_label, start_scale=0.1):
     rng = np.random.default_rng(3)
     starts = model_prob.theta0 + start_scale * rng.standard_normal((3, model_prob.size))
     runs = [
-        descend(p, s.astype(np.float32), learning_rate=0.05, steps=40, plane=axes_plane(p, x_label, y_label))
+        descend(
+            p,
+            s.astype(np.float32),
+            learning_rate=0.05,
+            steps=40,
+            plane=axes_plane(p, x_label, y_label),
+        )
         for p, s in ((model_prob, starts), (plain_prob, starts[:, np.argsort(order)]))
     ]
     np.testing.assert_allclose(runs[0].losses, runs[1].losses, rtol=1e-4)
@@ -107,12 +116,19 @@ def test_equinox_mlp_equals_the_dict_of_arrays(diabetes):
             transposed[lab] = lab.split(".kernel")[0] + f".weight[{j},{i}]"
     renamed = [transposed[lab] for lab in plain_prob.labels]
     assert sorted(renamed) == sorted(prob.labels)
-    order = np.array([plain_prob.index(next(k for k, v in transposed.items() if v == lab)) for lab in prob.labels])
+    order = np.array(
+        [
+            plain_prob.index(next(k for k, v in transposed.items() if v == lab))
+            for lab in prob.labels
+        ]
+    )
     np.testing.assert_array_equal(prob.theta0, plain_prob.theta0[order])
     a, b = "layers[0].weight[3,1]", "layers[2].bias[0]"
     surfaces = [
         evaluate_surface(prob, axes_plane(prob, a, b), span=0.5, resolution=7),
-        evaluate_surface(plain_prob, axes_plane(plain_prob, "layers[0].kernel[1,3]", b), span=0.5, resolution=7),
+        evaluate_surface(
+            plain_prob, axes_plane(plain_prob, "layers[0].kernel[1,3]", b), span=0.5, resolution=7
+        ),
     ]
     np.testing.assert_allclose(surfaces[0].loss, surfaces[1].loss, rtol=1e-5)
     starts = prob.theta0 + 0.1 * np.random.default_rng(3).standard_normal((3, prob.size))
@@ -190,7 +206,9 @@ def test_half_precision_parameters_get_a_clear_error(dtype):
     # threshold of 1e6 x the starting loss cannot even be represented.
     # Source: IEEE 754-2008, binary16; numpy.finfo(numpy.float16).max
     assert float(np.finfo(np.float16).max) == 65504.0 and np.isinf(np.float16(1e6))
-    with pytest.raises(ParameterError, match=rf"'w' is {dtype} \(half precision\).*astype\(jnp.float32\)"):
+    with pytest.raises(
+        ParameterError, match=rf"'w' is {dtype} \(half precision\).*astype\(jnp.float32\)"
+    ):
         Problem(lambda p: jnp.sum(p["w"].astype(jnp.float32) ** 2), {"w": jnp.ones(3, dtype)})
     model = eqx.nn.Linear(2, 1, key=jax.random.PRNGKey(0), dtype=jnp.dtype(dtype))
     with pytest.raises(ParameterError, match="half precision.*eqx.is_inexact_array"):

@@ -231,9 +231,7 @@ def _closed_over(loss: Callable[..., Any], closed: Any, fixed: tuple[Any, ...]) 
     return ""
 
 
-def _precision(
-    closed: Any, names: list[str], n_params: int, data: list[Any]
-) -> tuple[str, str]:
+def _precision(closed: Any, names: list[str], n_params: int, data: list[Any]) -> tuple[str, str]:
     """(discarded-precision message, integer-data message) from one pass over the program."""
     jaxpr = closed.jaxpr
     params = set(names[:n_params])

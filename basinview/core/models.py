@@ -68,7 +68,9 @@ class ModelView:
 
 def _array_leaves(tree: Any) -> tuple[Any, ...]:
     return tuple(
-        leaf for leaf in jax.tree_util.tree_leaves(tree) if isinstance(leaf, (np.ndarray, jax.Array))
+        leaf
+        for leaf in jax.tree_util.tree_leaves(tree)
+        if isinstance(leaf, (np.ndarray, jax.Array))
     )
 
 
