@@ -299,7 +299,7 @@ def _precision(closed: Any, names: list[str], n_params: int, data: list[Any]) ->
 
 
 def _mixed(flattener: Flattener, out_dtype: np.dtype, names: list[str], data: list[Any]) -> str:
-    leaf_types = {}
+    leaf_types: dict[str, list[str]] = {}
     for info, leaf in zip(flattener.leaves, jax.tree_util.tree_leaves(flattener.view_arrays)):
         leaf_types.setdefault(str(np.dtype(jnp.result_type(leaf))), []).append(info.name)
     if len(leaf_types) > 1:

@@ -34,6 +34,8 @@ from typing import Any
 import jax
 import numpy as np
 
+from .errors import ParameterError
+
 __all__ = ["ModelView", "model_view"]
 
 
@@ -108,8 +110,12 @@ def _nnx_view(nnx: Any, params: Any) -> ModelView | None:
         return to_pure(st) if to_pure is not None else st.to_pure_dict()
 
     arrays = pure(state)
-    if jax.tree_util.tree_structure(arrays).num_leaves != state_def.num_leaves:
-        raise AssertionError("nnx state and its pure dict disagree")  # pragma: no cover
+    if len(jax.tree_util.tree_leaves(arrays)) != len(jax.tree_util.tree_leaves(state)):
+        raise ParameterError(
+            "the nnx.Param variables of this flax module cannot be read as plain arrays "
+            "(nnx.to_pure_dict gave a different number of leaves). Pass the parameters "
+            "as a dict of arrays and call nnx.merge inside the loss instead."
+        )
 
     def combine(a: Any) -> Any:
         rebuilt = jax.tree_util.tree_unflatten(state_def, jax.tree_util.tree_leaves(a))
