@@ -201,6 +201,17 @@ def _constant_name(loss: Callable[..., Any], const: Any) -> str:
     return ""
 
 
+def _same_array(a: Any, b: Any) -> bool:
+    if a is b:
+        return True
+    if np.shape(a) != np.shape(b):
+        return False
+    try:
+        return bool(np.array_equal(np.asarray(a), np.asarray(b)))
+    except (TypeError, ValueError):  # extended dtypes (random keys)
+        return False
+
+
 def _closed_over(loss: Callable[..., Any], closed: Any, fixed: tuple[Any, ...]) -> str:
     consts = list(closed.consts)
     for sub in _jaxprs(closed.jaxpr):
@@ -212,11 +223,7 @@ def _closed_over(loss: Callable[..., Any], closed: Any, fixed: tuple[Any, ...]) 
         size = int(np.size(const))
         if size < LARGE_CONSTANT or not hasattr(const, "shape"):
             continue
-        if any(
-            f is const
-            or (np.shape(f) == np.shape(const) and np.array_equal(np.asarray(f), np.asarray(const)))
-            for f in fixed
-        ):
+        if any(_same_array(f, const) for f in fixed):
             continue  # a fixed part of the user's model (e.g. an integer buffer)
         return (
             f"uses a constant array of shape {tuple(const.shape)} ({const.dtype})"
@@ -274,10 +281,12 @@ def _precision(closed: Any, names: list[str], n_params: int, data: list[Any]) ->
         what = ", ".join(sorted(to_int))
         discarded = (
             f"converts values computed from the parameters {what} to integers, which "
-            "discards every digit after the point: the gradient through them is zero "
-            "and descent cannot move them. Fix: keep the parameters floating-point "
-            "(jnp.round keeps the type, but also has a zero gradient; use a smooth "
-            "function instead)."
+            "discards every digit after the point: the gradient through that conversion "
+            "is zero, so where the loss depends on the parameters only through it, descent "
+            "cannot move them and the surface is a staircase. Fix: use a smooth function "
+            "of the parameters instead (jnp.round and jnp.floor have a zero gradient too). "
+            "If the integers only pick an index beside a smooth part (interpolation), "
+            "silence this check with lint={'ignore': ['discarded-precision']}."
         )
     integer = ""
     for name, ftype in sorted(int_uses.items()):
