@@ -165,7 +165,7 @@ def test_discarded_precision(x64, longley):
         return jnp.mean((y - x @ w.astype(jnp.int32)) ** 2)
 
     with pytest.warns(
-        DiscardedPrecisionWarning, match="to integers.*gradient through them is zero"
+        DiscardedPrecisionWarning, match="to integers.*gradient through that conversion is zero"
     ):
         Problem(rounds, np.zeros(x.shape[1]), x, y)
 
@@ -218,9 +218,34 @@ def test_the_projects_own_scenarios_and_test_losses_lint_clean():
     for name in names:
         prob = getattr(scenarios, name)().problem
         assert lint_loss(prob.loss, prob.flattener, prob.data, name=prob.name) == (), name
+
+    def range_misfit(params, receivers, ranges):  # the quickstart notebook's loss
+        dx = params["x"] - receivers[:, 0]
+        dy = params["y"] - receivers[:, 1]
+        return jnp.mean((jnp.sqrt(dx**2 + dy**2 + 1e-12) - ranges) ** 2)
+
+    extras = scenarios.beacon(seed=2026).extras
     for loss, params, data in (
+        (range_misfit, {"x": 1.0, "y": 1.0}, (extras["receivers"], extras["ranges"])),
         (himmelblau, {"x": 0.0, "y": 0.0}, ()),
         (quadratic, jnp.zeros(3), (np.diag([1.0, 2.0, 3.0]), np.array([1.0, 0.0, -1.0]))),
     ):
         prob = Problem(loss, params, *data)
         assert lint_loss(prob.loss, prob.flattener, prob.data) == ()
+
+
+def test_findings_point_at_the_users_line_and_lint_loss_only_returns_them(longley):
+    x, y = longley
+    args = (
+        ols_broadcast,
+        np.zeros(x.shape[1], np.float32),
+        x.astype(np.float32),
+        y.astype(np.float32),
+    )
+    with warnings.catch_warnings(record=True) as rec:
+        warnings.simplefilter("always")
+        prob = Problem(*args)
+        found = lint_loss(prob.loss, prob.flattener, prob.data, name=prob.name)
+    assert len(rec) == 1 and rec[0].filename == __file__  # raised once, at Problem(...)
+    assert [type(f) for f in found] == [RowBroadcastWarning]
+    assert "'row-broadcast'" in str(found[0])
