@@ -226,3 +226,43 @@ def test_a_loss_without_gradient_still_gives_a_surface_but_no_descent():
     ):
         with pytest.raises(LossError, match="cannot differentiate.*custom_jvp"):
             call()
+
+
+def test_one_parameter_problem_works_without_a_plane_and_says_so_where_one_is_needed():
+    from basinview.core import (
+        axes_plane,
+        descend,
+        find_minima,
+        hessian_plane,
+        random_plane,
+        segment_profile,
+        step_size_sweep,
+        through_plane,
+    )
+
+    x = np.array([1.0, 2.0, 4.0, 7.0], np.float32)
+    prob = Problem(lambda p, x: jnp.mean((p - x) ** 2), 0.0, x)
+    runs = descend(prob, np.array([[0.0], [10.0]], np.float32), learning_rate=0.25, steps=200)
+    # Source: the least-squares location estimate is the sample mean (numpy.mean).
+    np.testing.assert_allclose(runs.final[:, 0], np.mean(x), rtol=1e-4)
+    assert set(runs.status) == {"converged"}
+    np.testing.assert_allclose(find_minima(prob, runs).points[:, 0], np.mean(x), rtol=1e-4)
+    assert len(step_size_sweep(prob, np.zeros((1, 1)), learning_rates=[0.1, 2.0], steps=50).table) == 2
+    profile = segment_profile(prob, np.zeros(1), np.array([2 * np.mean(x)]), resolution=5)
+    np.testing.assert_allclose(np.min(profile.loss), np.var(x), rtol=1e-5)
+    for call in (
+        lambda: axes_plane(prob, "theta", "theta"),
+        lambda: random_plane(prob),
+        lambda: hessian_plane(prob),
+        lambda: through_plane(prob, np.zeros(1), np.ones(1), 2 * np.ones(1)),
+    ):
+        with pytest.raises(ParameterError, match=r"one parameter \('theta'\).*segment_profile"):
+            call()
+
+
+def test_kind_names_where_the_parameters_come_from():
+    assert Problem(lambda p: jnp.sum(p**2), jnp.ones(2)).kind == "pytree"
+    eqx = pytest.importorskip("equinox")
+    lin = eqx.nn.Linear(2, 1, key=jax.random.PRNGKey(0))
+    prob = Problem(lambda m: jnp.sum(m(jnp.ones(2)) ** 2), lin)
+    assert prob.kind == "equinox" and prob.labels == ("weight[0,0]", "weight[0,1]", "bias[0]")

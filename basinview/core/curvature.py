@@ -26,7 +26,7 @@ import numpy as np
 
 from .errors import ParameterError
 from .planes import Plane, flat_origin
-from .problem import Problem
+from .problem import Problem, require_plane
 
 __all__ = [
     "EXACT_LIMIT",
@@ -389,6 +389,7 @@ def hessian_plane(
         Pearlmutter, B. A. (1994). Fast exact multiplication by the Hessian.
         Neural Computation 6(1), 147-160.
     """
+    require_plane(problem, "hessian_plane")
     theta, origin_list = flat_origin(problem, origin)
     spec = hessian_spectrum(problem, theta, k=2, method=method, seed=seed)
     d1, d2 = (spec.vectors[i].astype(problem.dtype) for i in range(2))

@@ -9,12 +9,19 @@ not know about basinview.
 from __future__ import annotations
 
 __all__ = [
+    "LINT_CHECKS",
     "BasinviewError",
+    "ClosedOverDataWarning",
+    "DiscardedPrecisionWarning",
     "FingerprintWarning",
+    "IntegerDataWarning",
     "LossError",
+    "LossLintWarning",
     "MinimaWarning",
+    "MixedPrecisionWarning",
     "NoCriticalPointError",
     "ParameterError",
+    "RowBroadcastWarning",
     "SettingsError",
 ]
 
@@ -45,3 +52,59 @@ class NoCriticalPointError(BasinviewError, IndexError):
 
 class MinimaWarning(UserWarning):
     """find_minima found no critical point, or its result may mislead; the message names the fixes."""
+
+
+class LossLintWarning(UserWarning):
+    """A pattern in the loss that runs without error but can give a wrong answer.
+
+    Raised once, when a :class:`~basinview.core.Problem` is built, by the loss
+    lint (:mod:`basinview.core.lint`). Each kind of finding is a subclass
+    with a short name in ``check``; silence one with
+    ``Problem(..., lint={"ignore": [name]})``, all with ``lint=False``, or
+    with a standard warnings filter on the class.
+    """
+
+    check: str = ""
+
+
+class RowBroadcastWarning(LossLintWarning):
+    """The loss builds an intermediate with two axes of the data's row count."""
+
+    check = "row-broadcast"
+
+
+class ClosedOverDataWarning(LossLintWarning):
+    """The loss closes over a large constant array instead of taking it as data."""
+
+    check = "closed-over-data"
+
+
+class DiscardedPrecisionWarning(LossLintWarning):
+    """The loss casts parameters or data down to a lower floating precision."""
+
+    check = "discarded-precision"
+
+
+class MixedPrecisionWarning(LossLintWarning):
+    """The loss computes in a higher precision than the parameters have."""
+
+    check = "mixed-precision"
+
+
+class IntegerDataWarning(LossLintWarning):
+    """Integer data used as numbers hold values the loss's float type rounds."""
+
+    check = "integer-data"
+
+
+LINT_CHECKS: dict[str, type[LossLintWarning]] = {
+    cls.check: cls
+    for cls in (
+        RowBroadcastWarning,
+        ClosedOverDataWarning,
+        DiscardedPrecisionWarning,
+        MixedPrecisionWarning,
+        IntegerDataWarning,
+    )
+}
+"""Every lint check by name (the names ``lint={"ignore": [...]}`` accepts)."""

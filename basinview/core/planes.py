@@ -36,7 +36,7 @@ from typing import Any
 import numpy as np
 
 from .errors import ParameterError
-from .problem import Problem
+from .problem import Problem, require_plane
 
 __all__ = [
     "COORDINATES",
@@ -257,6 +257,7 @@ def axes_plane(problem: Problem, x: str, y: str, *, origin: Any = None) -> Plane
         >>> plane.lift(1.0, -1.0).tolist()
         [1.0, -1.0]
     """
+    require_plane(problem, "axes_plane")
     if x == y:
         raise ParameterError(
             f"the two plane coordinates must differ; got {x!r} twice. Choose two "
@@ -349,6 +350,7 @@ def random_plane(
         Visualizing the loss landscape of neural nets. NeurIPS.
         arXiv:1712.09913.
     """
+    require_plane(problem, "random_plane")
     if normalise not in NORMALISATIONS:
         raise ParameterError(f"normalise must be one of {NORMALISATIONS}; got {normalise!r}.")
     theta, origin_list = flat_origin(problem, origin)
@@ -402,6 +404,7 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     ``(project(p2))`` with ``b > 0``. Coordinates are offsets from ``p0`` in
     units of ``|p1 - p0|``.
     """
+    require_plane(problem, "through_plane")
     pts = [
         problem.flatten(p, what=f"point p{i}").astype(np.float64)
         for i, p in enumerate((p0, p1, p2))

@@ -14,6 +14,7 @@ import functools
 import hashlib
 import inspect
 import re
+import warnings
 from collections.abc import Callable, Hashable, Iterator
 from typing import Any
 
@@ -22,12 +23,18 @@ import jax.numpy as jnp
 import numpy as np
 
 from .errors import LossError, ParameterError
+from .lint import lint_ignored, lint_loss
 from .pytrees import Flattener, make_flattener
+from .rows import REDUCTIONS, _check_chunking, _row_count, accumulate_rows
 
-__all__ = ["REDUCTIONS", "Problem", "accumulate_rows", "loss_name", "loss_runtime_errors"]
-
-REDUCTIONS = ("mean", "sum")
-"""How a loss combines its rows: ``"mean"`` (e.g. ``jnp.mean``) or ``"sum"``."""
+__all__ = [
+    "REDUCTIONS",
+    "Problem",
+    "accumulate_rows",
+    "loss_name",
+    "loss_runtime_errors",
+    "require_plane",
+]
 
 _TRACE_ERRORS = (
     jax.errors.ConcretizationTypeError,
@@ -105,78 +112,6 @@ def _as_data(data: tuple[Any, ...]) -> tuple[Any, ...]:
     return tuple(jax.tree_util.tree_map(convert, d) for d in data)
 
 
-def _row_count(data: tuple[Any, ...]) -> int:
-    return int(jax.tree_util.tree_leaves(data)[0].shape[0])
-
-
-def accumulate_rows(
-    loss: Callable[..., Any], params: Any, data: tuple[Any, ...], rows: int, reduction: str
-) -> jax.Array:
-    """``loss(params, *data)`` accumulated over chunks of ``rows`` rows of the data.
-
-    Valid when the loss is a mean (``reduction="mean"``) or a sum
-    (``"sum"``) of one term per row: then the whole-data loss is the
-    row-weighted mean, or the sum, of the chunk losses. The chunks run in a
-    ``lax.scan`` whose body is rematerialised (``jax.checkpoint``), so the
-    memory of the loss, its gradient and Hessian-vector products grows with
-    ``rows``, not with the number of rows of the data. A last, shorter
-    chunk takes the remaining rows.
-    """
-    n = _row_count(data)
-    full, rest = divmod(n, rows)
-    if full == 0 or (full == 1 and rest == 0):
-        return loss(params, *data)
-    piece = jax.checkpoint(lambda p, chunk: loss(p, *chunk))
-    head = jax.tree_util.tree_map(
-        lambda a: a[: full * rows].reshape((full, rows, *a.shape[1:])), data
-    )
-    first = jax.tree_util.tree_map(lambda a: a[0], head)
-    out = jax.eval_shape(piece, params, first)
-
-    def body(total: jax.Array, chunk: Any) -> tuple[jax.Array, None]:
-        return total + piece(params, chunk), None
-
-    total, _ = jax.lax.scan(body, jnp.zeros(out.shape, out.dtype), head)
-    if reduction == "mean":
-        total = total * jnp.asarray(rows / n, out.dtype)
-    if rest:
-        tail = jax.tree_util.tree_map(lambda a: a[full * rows :], data)
-        value = piece(params, tail)
-        if reduction == "mean":
-            value = value * jnp.asarray(rest / n, out.dtype)
-        total = total + value
-    return total
-
-
-def _check_chunking(
-    data: tuple[Any, ...], rows: Any, reduction: Any
-) -> tuple[int | None, str | None]:
-    if rows is None:
-        if reduction is not None:
-            raise ParameterError(
-                "reduction= only matters with data_chunk_rows=...; give both or neither."
-            )
-        return None, None
-    if isinstance(rows, bool) or not isinstance(rows, (int, np.integer)) or rows < 1:
-        raise ParameterError(f"data_chunk_rows must be a positive integer; got {rows!r}.")
-    if reduction not in REDUCTIONS:
-        raise ParameterError(
-            f"data_chunk_rows needs reduction='mean' or 'sum' (how the loss combines its "
-            f"rows: jnp.mean or jnp.sum over them); got reduction={reduction!r}."
-        )
-    leaves = jax.tree_util.tree_leaves(data)
-    if not leaves:
-        raise ParameterError("data_chunk_rows needs data, but the problem has none.")
-    lead = sorted({int(leaf.shape[0]) if leaf.ndim else -1 for leaf in leaves})
-    if len(lead) != 1 or lead[0] < 1:
-        raise ParameterError(
-            "data_chunk_rows splits every data array along its first axis (rows), so all "
-            f"data arrays must have the same number of rows; got leading sizes {lead} "
-            "(-1: a scalar). Pass constants to the loss with functools.partial instead."
-        )
-    return int(rows), str(reduction)
-
-
 class Problem:
     """A loss, its parameters and its data, seen as a function of one flat vector.
 
@@ -198,6 +133,16 @@ class Problem:
             one; with ``"sum"`` it would be counted once per chunk, so leave
             such terms out or use ``"mean"``. The contract is checked on the
             first rows of the data when the problem is built.
+        lint: run the loss lint (:mod:`basinview.core.lint`) once now: True
+            (default), False, or ``{"ignore": ["row-broadcast", ...]}`` to
+            skip checks by name. Each finding is a
+            :class:`~basinview.core.errors.LossLintWarning` subclass.
+
+    ``params`` may also be an equinox module (its floating arrays are
+    explored, the rest is held fixed) or a flax.nnx module (its
+    ``nnx.Param`` variables); the loss is always called with a whole model
+    (see :mod:`basinview.core.models`). Parameters are float32 or float64;
+    half precision is refused with an error that says how to convert.
 
     The problem is immutable. Compiled functions are built once per problem
     and per static configuration and reused; changing only values (parameters,
@@ -223,6 +168,7 @@ class Problem:
         name: str | None = None,
         data_chunk_rows: int | None = None,
         reduction: str | None = None,
+        lint: Any = True,
     ) -> None:
         if not callable(loss):
             raise LossError(
@@ -230,6 +176,7 @@ class Problem:
                 f"{type(loss).__name__}."
             )
         _check_signature(loss, len(data))
+        ignore = lint_ignored(lint)
         flattener, theta0 = make_flattener(params)
         self._loss = loss
         self._params = params
@@ -243,6 +190,9 @@ class Problem:
         self._theta0 = theta0
         theta0.setflags(write=False)
         self._check_loss()
+        if ignore is not None:
+            for finding in lint_loss(loss, flattener, self._data, name=self._name, ignore=ignore):
+                warnings.warn(finding, stacklevel=2)
 
     # ------------------------------------------------------------------ basics
     @property
@@ -278,6 +228,11 @@ class Problem:
     def labels(self) -> tuple[str, ...]:
         """One readable label per flat coordinate, e.g. ``layer1.bias[3]``."""
         return self._flat.labels
+
+    @property
+    def kind(self) -> str:
+        """Where the parameters come from: ``"pytree"``, ``"equinox"`` or ``"nnx"``."""
+        return self._flat.kind
 
     @property
     def dtype(self) -> np.dtype:
@@ -534,3 +489,24 @@ def _check_signature(loss: Callable[..., Any], n_data: int) -> None:
             "in the order the loss expects, or wrap the loss, e.g. "
             "lambda params, x, y: my_loss(x, y, params)."
         ) from None
+
+
+def require_plane(problem: Problem, what: str) -> None:
+    """Raise a :class:`ParameterError` that can be followed if ``problem`` has one parameter.
+
+    Called wherever a plane is needed (``what`` names the caller, e.g.
+    ``"axes_plane"``); descent, step-size sweeps, minima and profiles need
+    no plane and work with one parameter.
+    """
+    if problem.size >= 2:
+        return
+    label = problem.labels[0]
+    raise ParameterError(
+        f"{what} needs a plane of two coordinates, but this problem has one parameter "
+        f"({label!r}): there is no 2-D slice to draw. Without a plane you can still use "
+        "descend(problem, starts) (its paths record the parameter itself), "
+        "step_size_sweep, find_minima and segment_profile(problem, a, b) for the loss "
+        "along the line between two values; the Explorer and `python -m basinview "
+        "report` draw planes, so give them a model with at least two parameters (e.g. "
+        "add an intercept, {'w': w, 'b': 0.0})."
+    )
