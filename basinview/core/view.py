@@ -154,9 +154,12 @@ def upgrade_settings(problem: Problem, settings: Settings) -> Settings:
     Records from before axes planes read in parameter values have their span and
     grids of starts shifted by the origin's two values; newer records come back unchanged.
     """
-    plane_spec, span, starts_spec = upgrade_record(
-        problem, settings.plane, settings.span, settings.starts
-    )
+    try:
+        plane_spec, span, starts_spec = upgrade_record(
+            problem, settings.plane, settings.span, settings.starts
+        )
+    except ParameterError as exc:
+        raise SettingsError(f"settings field 'plane' cannot be rebuilt: {exc}") from None
     if (plane_spec, span, starts_spec) == (settings.plane, settings.span, settings.starts):
         return settings
     return dataclasses.replace(settings, plane=plane_spec, span=span, starts=starts_spec)
