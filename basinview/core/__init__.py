@@ -19,6 +19,7 @@ from .curvature import (
 )
 from .descent import (
     STATUSES,
+    DescentConfig,
     Runs,
     default_plane,
     default_tolerances,
@@ -86,6 +87,7 @@ __all__ = [
     "STATUSES",
     "BasinMap",
     "BasinviewError",
+    "DescentConfig",
     "CriticalPoint",
     "FingerprintWarning",
     "LossError",

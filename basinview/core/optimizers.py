@@ -12,10 +12,11 @@ derivative at another point (used by the sequential variant only).
 
 from __future__ import annotations
 
+import functools
 import inspect
 import math
 import numbers
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Hashable, Mapping
 from typing import Any, NamedTuple
 
 import jax
@@ -84,6 +85,9 @@ class UpdateRule(NamedTuple):
         preconditioner: for adaptive rules, ``preconditioner(state, hyper) ->
             p``, the positive diagonal ``P`` by which the current state divides
             the (averaged) gradient; None for other rules.
+        key: a stable, hashable identity of the rule's program: two rules
+            with equal keys compute the same thing, so the compiled program
+            of one serves the other. None: the functions identify the rule.
     """
 
     name: str
@@ -94,6 +98,7 @@ class UpdateRule(NamedTuple):
     init: Callable[[jax.Array, Hyper], Any]
     step: Callable[[jax.Array, jax.Array, Any, Hyper, Oracle], tuple[jax.Array, Any]]
     preconditioner: Callable[[Any, Hyper], jax.Array] | None = None
+    key: Hashable | None = None
 
 
 def _no_state(theta: jax.Array, hyper: Hyper) -> tuple[()]:
@@ -198,6 +203,58 @@ def _optax_hyper_names(factory: Callable[..., Any]) -> tuple[tuple[str, ...], di
     return ("learning_rate", *names), defaults
 
 
+class _Unkeyable(Exception):
+    pass
+
+
+_PLAIN = (bool, int, float, complex, str, bytes, type(None))
+
+
+def _fingerprint(obj: Any, seen: tuple[int, ...] = ()) -> Hashable:
+    """A hashable value that is equal for two objects built the same way.
+
+    Functions compare by code, defaults and the fingerprints of the values
+    they close over; numbers and strings by value; tuples, lists, dicts and
+    NamedTuples (such as optax transformations) element by element; small
+    arrays by shape, dtype and bytes. Anything else raises ``_Unkeyable``.
+    """
+    if id(obj) in seen:  # a function that refers to itself
+        return ("cycle", seen.index(id(obj)))
+    seen = (*seen, id(obj))
+    if isinstance(obj, _PLAIN):
+        return (type(obj).__name__, obj)
+    if isinstance(obj, (np.generic,)):
+        return ("np", obj.dtype.str, obj.item())
+    if isinstance(obj, (np.ndarray, jax.Array)):
+        arr = np.asarray(obj)
+        if arr.size > 4096:
+            raise _Unkeyable
+        return ("array", arr.shape, arr.dtype.str, arr.tobytes())
+    if isinstance(obj, (tuple, list)):
+        return (type(obj).__qualname__, tuple(_fingerprint(x, seen) for x in obj))
+    if isinstance(obj, dict):
+        return ("dict", tuple((_fingerprint(k, seen), _fingerprint(v, seen)) for k, v in obj.items()))
+    if isinstance(obj, functools.partial):
+        return ("partial", _fingerprint(obj.func, seen), _fingerprint(obj.args, seen),
+                _fingerprint(obj.keywords, seen))  # fmt: skip
+    if inspect.isfunction(obj):
+        cells = tuple(_fingerprint(c.cell_contents, seen) for c in (obj.__closure__ or ()))
+        return ("function", obj.__module__, obj.__code__, _fingerprint(obj.__defaults__, seen),
+                _fingerprint(obj.__kwdefaults__, seen), cells)  # fmt: skip
+    if inspect.isbuiltin(obj) or inspect.isclass(obj) or inspect.ismodule(obj):
+        return ("named", getattr(obj, "__module__", None), getattr(obj, "__qualname__", repr(obj)))
+    raise _Unkeyable
+
+
+def _stable_key(*parts: Any) -> Hashable | None:
+    try:
+        key = tuple(_fingerprint(p) for p in parts)
+        hash(key)
+    except (_Unkeyable, TypeError):
+        return None
+    return key
+
+
 def optax_rule(
     opt: Callable[..., optax.GradientTransformation] | optax.GradientTransformation,
     *,
@@ -215,6 +272,13 @@ def optax_rule(
             rate of 1.0 to sweep the rate here).
         name: name for tables; defaults to the factory's name.
         **static: fixed non-float arguments of the factory (e.g. ``nesterov=True``).
+
+    Rules built from equal factories (or transformations built the same way,
+    e.g. ``optax.chain(optax.clip(1.0), optax.sgd(1.0))`` written twice) get
+    equal :attr:`UpdateRule.key`, so they share one compiled program: passing
+    ``optax.adamw`` again with another learning rate compiles nothing. A
+    transformation holding something that cannot be compared (a large array,
+    an arbitrary object) gets no key and compiles once per object.
     """
     if isinstance(opt, optax.GradientTransformation):
         transform = opt
@@ -234,6 +298,7 @@ def optax_rule(
             bounds={"learning_rate": POSITIVE},
             init=init_t,
             step=step_t,
+            key=_stable_key("optax-transformation", name, transform),
         )
     if not callable(opt):
         raise ParameterError(
@@ -269,6 +334,7 @@ def optax_rule(
         bounds={"learning_rate": POSITIVE},
         init=init,
         step=step,
+        key=_stable_key("optax-factory", name, factory, tuple(sorted(static.items()))),
     )
 
 

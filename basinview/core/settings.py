@@ -232,7 +232,7 @@ def record_settings(
     note: str = "",
 ) -> Settings:
     """The :class:`Settings` of a computed view (plane, surface grid, starts and runs)."""
-    cfg = runs.config
+    cfg = runs.config.record()
     return Settings(
         loss_name=problem.name,
         fingerprint=problem.fingerprint,
