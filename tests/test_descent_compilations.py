@@ -73,7 +73,9 @@ def test_another_baked_in_value_compiles_once_and_is_used(bowl):
     with count_compilations() as counter:
         fast = descend(bowl, starts, optimizer=optax.sgd(0.05), **kw)
     assert counter.count == 1
-    plain = descend(bowl, starts, learning_rate=0.05, **{k: v for k, v in kw.items() if k != "learning_rate"})
+    plain = descend(
+        bowl, starts, learning_rate=0.05, **{k: v for k, v in kw.items() if k != "learning_rate"}
+    )
     np.testing.assert_allclose(fast.losses, plain.losses, rtol=1e-6)
     assert slow.final_loss[0] > fast.final_loss[0]
 

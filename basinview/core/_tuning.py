@@ -28,8 +28,8 @@ __all__ = [
     "count_compilations",
     "evaluation_bytes",
     "fastest",
-    "progress_bar",
     "pipelined",
+    "progress_bar",
     "progress_counter",
     "runs_per_call_for",
 ]

@@ -139,7 +139,9 @@ def surface_sizes_from(sizes: Any) -> SurfaceSizes:
     chunk = _size_entry(sizes, "surface_chunk", 1)
     block = _size_entry(sizes, "surface_block", 1)
     if block % chunk:
-        raise ParameterError(f"sizes: surface_block ({block}) must be a multiple of surface_chunk ({chunk}).")
+        raise ParameterError(
+            f"sizes: surface_block ({block}) must be a multiple of surface_chunk ({chunk})."
+        )
     return SurfaceSizes(chunk, block)
 
 
@@ -185,7 +187,9 @@ def loss_cost(problem: Any, *, gradient: bool = False) -> LossCost:
     def build() -> LossCost:
         fn = jax.value_and_grad(problem.flat_loss) if gradient else problem.flat_loss
         theta = jax.ShapeDtypeStruct((problem.size,), problem.dtype)
-        data = jax.tree_util.tree_map(lambda a: jax.ShapeDtypeStruct(a.shape, a.dtype), problem.data)
+        data = jax.tree_util.tree_map(
+            lambda a: jax.ShapeDtypeStruct(a.shape, a.dtype), problem.data
+        )
         jaxpr = jax.make_jaxpr(fn)(theta, data)
         b, f = _walk(jaxpr.jaxpr)
         return LossCost(max(b, 8 * problem.size, 64), max(f, problem.size, 1))

@@ -250,9 +250,23 @@ def descend(
         devs = devs[:1]  # one call's worth of runs: splitting it would change its shapes
     steps_b = bucket(config.steps, minimum=8)
     fn = problem.compiled(
-        ("descent", _rule_key(rule), per_device, steps_b, config.batch_size, devs, config.sizes.group),
+        (
+            "descent",
+            _rule_key(rule),
+            per_device,
+            steps_b,
+            config.batch_size,
+            devs,
+            config.sizes.group,
+        ),
         lambda: build_program(
-            problem.flat_loss, rule, per_device, steps_b, config.batch_size, devs, config.sizes.group
+            problem.flat_loss,
+            rule,
+            per_device,
+            steps_b,
+            config.batch_size,
+            devs,
+            config.sizes.group,
         ),
     )
     with loss_runtime_errors(problem, "descent runs"):
@@ -264,7 +278,11 @@ def descend(
 
 
 def _sizes(
-    problem: Problem, config: DescentConfig, n_runs: int, theta_all: np.ndarray, devs: tuple[Any, ...]
+    problem: Problem,
+    config: DescentConfig,
+    n_runs: int,
+    theta_all: np.ndarray,
+    devs: tuple[Any, ...],
 ) -> DescentSizes:
     """The program sizes: recorded ones, else the cost model's (tuned group with ``tune``)."""
     if config.sizes is not None:
@@ -301,7 +319,9 @@ def _run_calls(
     else:
         whole, shared_on = replicated(devs), split(devs)
     data = problem.cached(("data-on", devs), lambda: jax.device_put(problem.data, whole))
-    tols = tuple(np.asarray(x, dtype) for x in (config.grad_tol, config.loss_tol, config.divergence_factor))
+    tols = tuple(
+        np.asarray(x, dtype) for x in (config.grad_tol, config.loss_tol, config.divergence_factor)
+    )
     shared = jax.device_put(
         Shared(
             max_steps=np.asarray(config.steps, np.int32),

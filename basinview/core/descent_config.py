@@ -100,8 +100,14 @@ class DescentConfig:
 
 
 def _positive_int(name: str, value: Any, low: int, high: int, hint: str) -> int:
-    if isinstance(value, bool) or not isinstance(value, (int, np.integer)) or not low <= value <= high:
-        raise ParameterError(f"{name} must be an integer from {low} to {high}; got {value!r}. {hint}")
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, (int, np.integer))
+        or not low <= value <= high
+    ):
+        raise ParameterError(
+            f"{name} must be an integer from {low} to {high}; got {value!r}. {hint}"
+        )
     return int(value)
 
 

@@ -233,7 +233,10 @@ def _fingerprint(obj: Any, seen: tuple[int, ...] = ()) -> Hashable:
     if isinstance(obj, (tuple, list)):
         return (type(obj).__qualname__, tuple(_fingerprint(x, seen) for x in obj))
     if isinstance(obj, dict):
-        return ("dict", tuple((_fingerprint(k, seen), _fingerprint(v, seen)) for k, v in obj.items()))
+        return (
+            "dict",
+            tuple((_fingerprint(k, seen), _fingerprint(v, seen)) for k, v in obj.items()),
+        )
     if isinstance(obj, functools.partial):
         return ("partial", _fingerprint(obj.func, seen), _fingerprint(obj.args, seen),
                 _fingerprint(obj.keywords, seen))  # fmt: skip
@@ -414,6 +417,19 @@ def check_hyper(rule: UpdateRule, hyper: Mapping[str, Any]) -> dict[str, list[fl
                 f"{rule.title} needs a value for {hname!r}; pass it as hyper={{{hname!r}: value}}."
             )
         scalar = isinstance(raw, (numbers.Number, str, bytes)) or getattr(raw, "ndim", 1) == 0
+        if not scalar and not isinstance(raw, (str, bytes)):
+            try:
+                shape = f"an array of shape {np.shape(raw)}"
+                nested = np.ndim(raw) > 1
+            except ValueError:  # ragged nesting
+                shape, nested = "nested lists of different lengths", True
+            if nested:
+                raise ParameterError(
+                    f"{hname} must be a number or a 1-D list of numbers; got {shape}. Every value is swept against every other "
+                    "hyper-parameter already (a Cartesian product), so give the distinct "
+                    f"values as a flat list, e.g. {hname}=numpy.ravel(values), or sweep "
+                    "another hyper-parameter through hyper={...}."
+                )
         try:
             values = [raw] if scalar else list(raw)
         except TypeError:

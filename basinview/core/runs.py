@@ -105,7 +105,9 @@ class Runs:
         try:
             level = float(target)
         except (TypeError, ValueError):
-            raise ParameterError(f"target must be a number (a loss value); got {target!r}.") from None
+            raise ParameterError(
+                f"target must be a number (a loss value); got {target!r}."
+            ) from None
         if np.isnan(level):
             raise ParameterError("target must be a number, not NaN.")
         with np.errstate(invalid="ignore"):

@@ -85,6 +85,7 @@ class Settings:
     created: str = ""
     versions: dict[str, str] = field(default_factory=dict)
     schema: int = SCHEMA_VERSION
+    sizes: dict[str, int] = field(default_factory=dict)
 
     # --------------------------------------------------------------- JSON
     def to_dict(self) -> dict[str, Any]:
@@ -230,9 +231,15 @@ def record_settings(
     starts: Starts,
     runs: Runs,
     note: str = "",
+    surface: Surface | None = None,
 ) -> Settings:
-    """The :class:`Settings` of a computed view (plane, surface grid, starts and runs)."""
+    """The :class:`Settings` of a computed view (plane, surface grid, starts and runs).
+
+    ``sizes`` records the program sizes the runs (and ``surface``, if given)
+    used, so :func:`compute_view` recomputes them with the same programs.
+    """
     cfg = runs.config.record()
+    sizes = {**runs.config.sizes.record(), **((surface.sizes or {}) if surface else {})}
     return Settings(
         loss_name=problem.name,
         fingerprint=problem.fingerprint,
@@ -254,6 +261,7 @@ def record_settings(
         note=note,
         created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         versions=library_versions(),
+        sizes=sizes,
     )
 
 
@@ -290,7 +298,11 @@ def compute_view(
         plane = plane_from_spec(problem, settings.plane)
     except ParameterError as exc:
         raise SettingsError(f"settings field 'plane' cannot be rebuilt: {exc}") from None
-    surface = evaluate_surface(problem, plane, span=settings.span, resolution=settings.resolution)
+    sizes = settings.sizes
+    surface = evaluate_surface(
+        problem, plane, span=settings.span, resolution=settings.resolution,
+        sizes=sizes if "surface_chunk" in sizes else None,
+    )  # fmt: skip
     try:
         starts = starts_from_spec(problem, settings.starts, plane=plane, initializers=initializers)
     except ParameterError as exc:
@@ -308,5 +320,6 @@ def compute_view(
         divergence_factor=settings.divergence_factor,
         batch_size=settings.batch_size,
         seed=settings.seed,
+        sizes=sizes if "descent_runs_per_call" in sizes else None,
     )
     return View(settings=settings, plane=plane, surface=surface, starts=starts, runs=runs)
