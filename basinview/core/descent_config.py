@@ -84,6 +84,13 @@ class DescentConfig:
     def with_sizes(self, sizes: DescentSizes) -> DescentConfig:
         return replace(self, sizes=sizes)
 
+    def get(self, key: str, default: Any = None) -> Any:
+        """``record().get(key, default)``: read the record like the dict it replaces."""
+        return self.record().get(key, default)
+
+    def __getitem__(self, key: str) -> Any:
+        return self.record()[key]
+
     def record(self) -> dict[str, Any]:
         """The JSON-ready record of the call that Settings store (sorted distinct values)."""
         return {
