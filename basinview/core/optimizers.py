@@ -12,7 +12,6 @@ derivative at another point (used by the sequential variant only).
 
 from __future__ import annotations
 
-import functools
 import inspect
 import math
 import numbers
@@ -25,6 +24,7 @@ import numpy as np
 import optax
 
 from .errors import ParameterError
+from .rule_keys import stable_key
 
 __all__ = [
     "ADAM",
@@ -203,61 +203,6 @@ def _optax_hyper_names(factory: Callable[..., Any]) -> tuple[tuple[str, ...], di
     return ("learning_rate", *names), defaults
 
 
-class _Unkeyable(Exception):
-    pass
-
-
-_PLAIN = (bool, int, float, complex, str, bytes, type(None))
-
-
-def _fingerprint(obj: Any, seen: tuple[int, ...] = ()) -> Hashable:
-    """A hashable value that is equal for two objects built the same way.
-
-    Functions compare by code, defaults and the fingerprints of the values
-    they close over; numbers and strings by value; tuples, lists, dicts and
-    NamedTuples (such as optax transformations) element by element; small
-    arrays by shape, dtype and bytes. Anything else raises ``_Unkeyable``.
-    """
-    if id(obj) in seen:  # a function that refers to itself
-        return ("cycle", seen.index(id(obj)))
-    seen = (*seen, id(obj))
-    if isinstance(obj, _PLAIN):
-        return (type(obj).__name__, obj)
-    if isinstance(obj, (np.generic,)):
-        return ("np", obj.dtype.str, obj.item())
-    if isinstance(obj, (np.ndarray, jax.Array)):
-        arr = np.asarray(obj)
-        if arr.size > 4096:
-            raise _Unkeyable
-        return ("array", arr.shape, arr.dtype.str, arr.tobytes())
-    if isinstance(obj, (tuple, list)):
-        return (type(obj).__qualname__, tuple(_fingerprint(x, seen) for x in obj))
-    if isinstance(obj, dict):
-        return (
-            "dict",
-            tuple((_fingerprint(k, seen), _fingerprint(v, seen)) for k, v in obj.items()),
-        )
-    if isinstance(obj, functools.partial):
-        return ("partial", _fingerprint(obj.func, seen), _fingerprint(obj.args, seen),
-                _fingerprint(obj.keywords, seen))  # fmt: skip
-    if inspect.isfunction(obj):
-        cells = tuple(_fingerprint(c.cell_contents, seen) for c in (obj.__closure__ or ()))
-        return ("function", obj.__module__, obj.__code__, _fingerprint(obj.__defaults__, seen),
-                _fingerprint(obj.__kwdefaults__, seen), cells)  # fmt: skip
-    if inspect.isbuiltin(obj) or inspect.isclass(obj) or inspect.ismodule(obj):
-        return ("named", getattr(obj, "__module__", None), getattr(obj, "__qualname__", repr(obj)))
-    raise _Unkeyable
-
-
-def _stable_key(*parts: Any) -> Hashable | None:
-    try:
-        key = tuple(_fingerprint(p) for p in parts)
-        hash(key)
-    except (_Unkeyable, TypeError):
-        return None
-    return key
-
-
 def optax_rule(
     opt: Callable[..., optax.GradientTransformation] | optax.GradientTransformation,
     *,
@@ -301,7 +246,7 @@ def optax_rule(
             bounds={"learning_rate": POSITIVE},
             init=init_t,
             step=step_t,
-            key=_stable_key("optax-transformation", name, transform),
+            key=stable_key("optax-transformation", name, transform),
         )
     if not callable(opt):
         raise ParameterError(
@@ -337,7 +282,7 @@ def optax_rule(
         bounds={"learning_rate": POSITIVE},
         init=init,
         step=step,
-        key=_stable_key("optax-factory", name, factory, tuple(sorted(static.items()))),
+        key=stable_key("optax-factory", name, factory, tuple(sorted(static.items()))),
     )
 
 
