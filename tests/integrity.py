@@ -34,6 +34,8 @@ def snapshot(obj: Any) -> Any:
         return obj.copy(deep=True)
     if isinstance(obj, dict):
         return {k: snapshot(v) for k, v in obj.items()}
+    if isinstance(obj, tuple) and hasattr(obj, "_fields"):  # a NamedTuple
+        return type(obj)(*(snapshot(v) for v in obj))
     if isinstance(obj, (list, tuple)):
         return type(obj)(snapshot(v) for v in obj)
     return copy.deepcopy(obj)

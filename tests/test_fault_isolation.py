@@ -47,6 +47,10 @@ from .conftest import himmelblau, quadratic
 from .test_descent_vs_numpy import np_gd, np_heavy_ball, np_nesterov
 from .test_reference_minima import HIMMELBLAU_MINIMA
 
+# These tests repeat learning rates on purpose (a clean batch with the same run
+# numbers as a faulty one); descend warns that repeats redo work.
+pytestmark = pytest.mark.filterwarnings("ignore:learning_rate repeats the values")
+
 # Fault ledger: what was injected, how often. Each test asserts its own entries.
 FAULTS = {
     "batch-start-in-nan-or-inf": (

@@ -35,6 +35,7 @@ from .curvature import (
 from .density import SpectralDensity, hessian_density
 from .descent import (
     STATUSES,
+    DescentConfig,
     Runs,
     default_plane,
     default_tolerances,
@@ -133,6 +134,7 @@ __all__ = [
     "CriticalPoint",
     "CriticalPointRegistry",
     "CurvedPath",
+    "DescentConfig",
     "DiscardedPrecisionWarning",
     "FingerprintWarning",
     "IntegerDataWarning",

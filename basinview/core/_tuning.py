@@ -1,10 +1,9 @@
-"""Small helpers that keep compiled shapes few, memory bounded and work cache-sized.
+"""Timing (only with ``tune=True``), progress bars and compilation counting.
 
-Sizes of vectorised batches are chosen from the bytes one evaluation of the
-loss writes (its intermediates, read off the traced program) so that a
-batch stays within a few MiB: on a CPU, keeping the working set near the
-caches matters more than vector width. For large surfaces a few candidate
-chunk sizes are timed once and the fastest is kept with the problem.
+Program sizes come from the cost model in :mod:`basinview.core.cost_model`
+(re-exported here: ``bucket``, ``chunk_size_for``, ``evaluation_bytes``,
+``runs_per_call_for``); :func:`fastest` times candidates only when a caller
+asks for tuning explicitly.
 """
 
 from __future__ import annotations
@@ -16,9 +15,10 @@ from collections.abc import Callable, Iterable, Iterator, Sequence
 from typing import Any
 
 import jax
-import jax.extend.core
 import jax.monitoring
 import numpy as np
+
+from .cost_model import bucket, chunk_size_for, evaluation_bytes, runs_per_call_for
 
 __all__ = [
     "TUNE_WORK_BYTES",
@@ -28,7 +28,9 @@ __all__ = [
     "count_compilations",
     "evaluation_bytes",
     "fastest",
+    "pipelined",
     "progress_bar",
+    "progress_counter",
     "runs_per_call_for",
 ]
 
@@ -39,100 +41,8 @@ _COMPILE_EVENTS = (
     "/jax/core/compile/backend_compile_duration",
 )
 
-# Bytes of loss intermediates one vectorised chunk of grid points may write.
-CHUNK_BUDGET_BYTES = 8 * 2**20
-# Bytes of value-and-gradient intermediates one step of a batch of runs may write.
-RUN_BUDGET_BYTES = 12 * 2**20
-# Work (bytes of intermediates written in total) from which timing a few
-# vectorisation sizes once per problem pays off: a few seconds of computing.
+# Work from which tune=True's timing is worth it (kept for callers that test it).
 TUNE_WORK_BYTES = 16 * 2**30
-
-
-def bucket(value: int, *, minimum: int = 1) -> int:
-    """Smallest size >= ``value`` of the form ``2**k`` or ``3 * 2**k``.
-
-    Padding batches to these sizes wastes at most a third of the work and
-    keeps the number of distinct compiled shapes logarithmic.
-
-    >>> [bucket(v) for v in (1, 3, 5, 7, 9, 13, 100)]
-    [1, 3, 6, 8, 12, 16, 128]
-    """
-    value = max(int(value), int(minimum), 1)
-    size = 1
-    while True:
-        if size >= value:
-            return size
-        if size >= 2 and size * 3 // 2 >= value:
-            return size * 3 // 2
-        size *= 2
-
-
-def data_bytes(problem: Any) -> int:
-    """Total bytes of the problem's data arrays."""
-    return int(
-        sum(
-            np.dtype(leaf.dtype).itemsize * leaf.size
-            for leaf in jax.tree_util.tree_leaves(problem.data)
-        )
-    )
-
-
-def _jaxpr_bytes(jaxpr: Any) -> int:
-    total = 0
-    for eqn in jaxpr.eqns:
-        for var in eqn.outvars:
-            aval = getattr(var, "aval", None)
-            shape = getattr(aval, "shape", None)
-            dtype = getattr(aval, "dtype", None)
-            if shape is not None and dtype is not None:
-                total += int(np.prod(shape, dtype=np.int64)) * np.dtype(dtype).itemsize
-        for sub in jax.extend.core.jaxprs_in_params(eqn.params):
-            total += _jaxpr_bytes(sub)
-    return total
-
-
-def evaluation_bytes(problem: Any, *, gradient: bool = False) -> int:
-    """Bytes of intermediates one evaluation of the loss (and gradient) writes.
-
-    Read off the traced program of one unbatched evaluation (no compilation)
-    and kept with the problem. The body of a loop (chunked data) counts once.
-    """
-
-    def build() -> int:
-        fn = jax.value_and_grad(problem.flat_loss) if gradient else problem.flat_loss
-        theta = jax.ShapeDtypeStruct((problem.size,), problem.dtype)
-        data = jax.tree_util.tree_map(
-            lambda a: jax.ShapeDtypeStruct(a.shape, a.dtype), problem.data
-        )
-        jaxpr = jax.make_jaxpr(fn)(theta, data)
-        return max(_jaxpr_bytes(jaxpr.jaxpr), 8 * problem.size, 64)
-
-    return int(problem.cached(("evaluation-bytes", gradient), build))
-
-
-def _pow2_floor(x: float) -> int:
-    return int(2 ** np.floor(np.log2(max(x, 1.0))))
-
-
-def chunk_size_for(problem: Any) -> int:
-    """Grid points to vectorise at once (a power of two from 1 to 1024).
-
-    As many as keep the intermediates of one chunk within
-    ``CHUNK_BUDGET_BYTES`` (see :func:`evaluation_bytes`).
-    """
-    chunk = _pow2_floor(CHUNK_BUDGET_BYTES / evaluation_bytes(problem))
-    return int(min(max(chunk, 1), 1024))
-
-
-def runs_per_call_for(problem: Any) -> int:
-    """Descent runs to step together in one compiled loop (a power of two, 4 to 4096).
-
-    As many as keep one step's value-and-gradient intermediates within
-    ``RUN_BUDGET_BYTES``; more runs only stream more memory per step, fewer
-    pay the per-step cost of the loop more often.
-    """
-    runs = _pow2_floor(RUN_BUDGET_BYTES / evaluation_bytes(problem, gradient=True))
-    return int(min(max(runs, 4), 4096))
 
 
 def fastest(
@@ -178,6 +88,52 @@ def progress_bar(
     from tqdm.auto import tqdm
 
     return tqdm(iterable, total=total, desc=desc, leave=False)
+
+
+class _NoBar:
+    def update(self, n: int = 1) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
+
+
+@contextlib.contextmanager
+def progress_counter(*, total: int, show: bool | None, desc: str) -> Iterator[Any]:
+    """A ``tqdm.auto`` bar of ``total`` calls (advanced with ``.update(1)`` as each
+    finishes) when ``show`` is true, else an object whose ``update`` does nothing."""
+    if not show:
+        yield _NoBar()
+        return
+    from tqdm.auto import tqdm
+
+    bar = tqdm(total=total, desc=desc, leave=False)
+    try:
+        yield bar
+    finally:
+        bar.close()
+
+
+def pipelined(
+    count: int, launch: Callable[[int], Any], collect: Callable[[int, Any], None], bar: Any
+) -> None:
+    """Run ``count`` compiled calls, keeping one call queued ahead of the one being read.
+
+    ``launch(i)`` dispatches call ``i`` (JAX runs it asynchronously);
+    ``collect(i, result)`` reads it back; the bar advances after each. An
+    interrupt (Ctrl-C) between calls stops the loop: what was collected stays
+    collected and nothing else is modified.
+    """
+    queued: list[tuple[int, Any]] = []
+    for i in range(count):
+        queued.append((i, launch(i)))
+        if len(queued) > 1:
+            j, result = queued.pop(0)
+            collect(j, result)
+            bar.update(1)
+    for j, result in queued:
+        collect(j, result)
+        bar.update(1)
 
 
 class CompileCounter:

@@ -115,6 +115,7 @@ def compute_surface(problem: Problem, view: ViewSpec, *, resolution: Any = None)
         view.plane,
         span=view.span,
         resolution=view.resolution if resolution is None else resolution,
+        sizes=view.sizes if resolution is None and "surface_chunk" in view.sizes else None,
     )
 
 
@@ -134,6 +135,7 @@ def compute_runs(problem: Problem, view: ViewSpec, *, min_runs: int = 1) -> Runs
         batch_size=view.batch_size,
         seed=view.seed,
         min_runs=min_runs,
+        sizes=view.sizes if "descent_runs_per_call" in view.sizes else None,
     )
 
 
@@ -259,8 +261,14 @@ def compute_profile(
     return profile, (str(minima.labels[i]), str(minima.labels[j]))
 
 
-def record_view(problem: Problem, view: ViewSpec, runs: Runs, note: str | None = None) -> Settings:
-    """The :class:`Settings` of ``view`` once its runs are computed."""
+def record_view(
+    problem: Problem,
+    view: ViewSpec,
+    runs: Runs,
+    note: str | None = None,
+    surface: Surface | None = None,
+) -> Settings:
+    """The :class:`Settings` of ``view`` once its runs (and surface) are computed."""
     return record_settings(
         problem,
         plane=view.plane,
@@ -269,6 +277,7 @@ def record_view(problem: Problem, view: ViewSpec, runs: Runs, note: str | None =
         starts=view.starts,
         runs=runs,
         note=view.note if note is None else note,
+        surface=surface,
     )
 
 
@@ -332,7 +341,9 @@ def analyse(
         sweep = compute_sweep(problem, view, sweep_rates, minima=found)
     seg = compute_profile(problem, found) if profile else None
     return Analysis(
-        settings=recorded if recorded is not None else record_view(problem, view, runs),
+        settings=(
+            recorded if recorded is not None else record_view(problem, view, runs, surface=surface)
+        ),
         plane=view.plane,
         surface=surface,
         starts=view.starts,

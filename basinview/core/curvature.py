@@ -177,7 +177,7 @@ def hessian_spectrum(
     dtype = problem.dtype
 
     def matvec(v: np.ndarray) -> np.ndarray:
-        return np.asarray(problem.hvp(point, jnp.asarray(v, dtype)), dtype=np.float64)
+        return np.asarray(problem.hvp(point, np.asarray(v, dtype)), dtype=np.float64)
 
     vals, ritz = _lanczos(matvec, n, steps, seed)
     if not np.all(np.isfinite(vals)):

@@ -15,7 +15,7 @@ from __future__ import annotations
 import inspect
 import math
 import numbers
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Hashable, Mapping
 from typing import Any, NamedTuple
 
 import jax
@@ -24,6 +24,7 @@ import numpy as np
 import optax
 
 from .errors import ParameterError
+from .rule_keys import stable_key
 
 __all__ = [
     "ADAM",
@@ -84,6 +85,9 @@ class UpdateRule(NamedTuple):
         preconditioner: for adaptive rules, ``preconditioner(state, hyper) ->
             p``, the positive diagonal ``P`` by which the current state divides
             the (averaged) gradient; None for other rules.
+        key: a stable, hashable identity of the rule's program: two rules
+            with equal keys compute the same thing, so the compiled program
+            of one serves the other. None: the functions identify the rule.
     """
 
     name: str
@@ -94,6 +98,7 @@ class UpdateRule(NamedTuple):
     init: Callable[[jax.Array, Hyper], Any]
     step: Callable[[jax.Array, jax.Array, Any, Hyper, Oracle], tuple[jax.Array, Any]]
     preconditioner: Callable[[Any, Hyper], jax.Array] | None = None
+    key: Hashable | None = None
 
 
 def _no_state(theta: jax.Array, hyper: Hyper) -> tuple[()]:
@@ -215,6 +220,13 @@ def optax_rule(
             rate of 1.0 to sweep the rate here).
         name: name for tables; defaults to the factory's name.
         **static: fixed non-float arguments of the factory (e.g. ``nesterov=True``).
+
+    Rules built from equal factories (or transformations built the same way,
+    e.g. ``optax.chain(optax.clip(1.0), optax.sgd(1.0))`` written twice) get
+    equal :attr:`UpdateRule.key`, so they share one compiled program: passing
+    ``optax.adamw`` again with another learning rate compiles nothing. A
+    transformation holding something that cannot be compared (a large array,
+    an arbitrary object) gets no key and compiles once per object.
     """
     if isinstance(opt, optax.GradientTransformation):
         transform = opt
@@ -234,6 +246,7 @@ def optax_rule(
             bounds={"learning_rate": POSITIVE},
             init=init_t,
             step=step_t,
+            key=stable_key("optax-transformation", name, transform),
         )
     if not callable(opt):
         raise ParameterError(
@@ -269,6 +282,7 @@ def optax_rule(
         bounds={"learning_rate": POSITIVE},
         init=init,
         step=step,
+        key=stable_key("optax-factory", name, factory, tuple(sorted(static.items()))),
     )
 
 
@@ -348,6 +362,19 @@ def check_hyper(rule: UpdateRule, hyper: Mapping[str, Any]) -> dict[str, list[fl
                 f"{rule.title} needs a value for {hname!r}; pass it as hyper={{{hname!r}: value}}."
             )
         scalar = isinstance(raw, (numbers.Number, str, bytes)) or getattr(raw, "ndim", 1) == 0
+        if not scalar and not isinstance(raw, (str, bytes)):
+            try:
+                shape = f"an array of shape {np.shape(raw)}"
+                nested = np.ndim(raw) > 1
+            except ValueError:  # ragged nesting
+                shape, nested = "nested lists of different lengths", True
+            if nested:
+                raise ParameterError(
+                    f"{hname} must be a number or a 1-D list of numbers; got {shape}. Every value is swept against every other "
+                    "hyper-parameter already (a Cartesian product), so give the distinct "
+                    f"values as a flat list, e.g. {hname}=numpy.ravel(values), or sweep "
+                    "another hyper-parameter through hyper={...}."
+                )
         try:
             values = [raw] if scalar else list(raw)
         except TypeError:

@@ -36,6 +36,9 @@ __all__ = [
     "require_plane",
 ]
 
+COMPILED_MEMO_SIZE = 32
+"""Compiled functions a Problem keeps (least recently used ones are dropped)."""
+
 _TRACE_ERRORS = (
     jax.errors.ConcretizationTypeError,
     jax.errors.TracerBoolConversionError,
@@ -290,11 +293,17 @@ class Problem:
     def compiled(
         self, key: Hashable, build: Callable[[], Callable[..., Any]]
     ) -> Callable[..., Any]:
-        """The compiled function for ``key``, built once by ``build()`` and reused."""
-        fn = self._compiled.get(key)
+        """The compiled function for ``key``, built once by ``build()`` and reused.
+
+        The memo keeps the ``COMPILED_MEMO_SIZE`` most recently used functions
+        (least recently used ones are dropped and rebuilt when needed again).
+        """
+        fn = self._compiled.pop(key, None)
         if fn is None:
             fn = build()
-            self._compiled[key] = fn
+        self._compiled[key] = fn  # (re)inserted last: most recently used
+        while len(self._compiled) > COMPILED_MEMO_SIZE:
+            del self._compiled[next(iter(self._compiled))]
         return fn
 
     def cached(self, key: Hashable, build: Callable[[], Any]) -> Any:

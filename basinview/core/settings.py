@@ -32,7 +32,7 @@ from .planes import Plane
 from .problem import Problem
 from .settings_json import MAX_SETTINGS_BYTES, SCHEMA_VERSION, fields_from_raw, parse
 from .starts import Starts
-from .surface import _resolution, span_ranges
+from .surface import Surface, _resolution, span_ranges
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -83,6 +83,7 @@ class Settings:
     created: str = ""
     versions: dict[str, str] = field(default_factory=dict)
     schema: int = SCHEMA_VERSION
+    sizes: dict[str, int] = field(default_factory=dict)
 
     # --------------------------------------------------------------- JSON
     def to_dict(self) -> dict[str, Any]:
@@ -228,9 +229,15 @@ def record_settings(
     starts: Starts,
     runs: Runs,
     note: str = "",
+    surface: Surface | None = None,
 ) -> Settings:
-    """The :class:`Settings` of a computed view (plane, surface grid, starts and runs)."""
-    cfg = runs.config
+    """The :class:`Settings` of a computed view (plane, surface grid, starts and runs).
+
+    ``sizes`` records the program sizes the runs (and ``surface``, if given)
+    used, so :func:`compute_view` recomputes them with the same programs.
+    """
+    cfg = runs.config.record()
+    sizes = {**runs.config.sizes.record(), **((surface.sizes or {}) if surface else {})}
     return Settings(
         loss_name=problem.name,
         fingerprint=problem.fingerprint,
@@ -252,4 +259,5 @@ def record_settings(
         note=note,
         created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         versions=library_versions(),
+        sizes=sizes,
     )

@@ -207,6 +207,12 @@ def fields_from_raw(raw: Any, names: set[str], required: set[str]) -> dict[str, 
     versions = raw.get("versions", {})
     if not isinstance(versions, dict) or not all(isinstance(v, str) for v in versions.values()):
         raise _bad("settings field 'versions' must map names to version strings.")
+    sizes = raw.get("sizes", {})
+    if not isinstance(sizes, dict) or not all(
+        isinstance(v, int) and not isinstance(v, bool) and 0 <= v <= MAX_INTEGER
+        for v in sizes.values()
+    ):
+        raise _bad("settings field 'sizes' must map names to non-negative integers.")
     plane = _expect(raw, "plane", (dict,), "an object")
     starts = _expect(raw, "starts", (dict,), "an object")
     for key, spec in (("plane", plane), ("starts", starts)):
@@ -234,4 +240,5 @@ def fields_from_raw(raw: Any, names: set[str], required: set[str]) -> dict[str, 
         created=_expect(raw, "created", (str,), "a string") if "created" in raw else "",
         versions=dict(versions),
         schema=schema,
+        sizes=dict(sizes),
     )

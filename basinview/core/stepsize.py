@@ -28,6 +28,7 @@ the fixed-step rules ``stability_ratio`` is ``lr / predicted_bound``.
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -123,7 +124,8 @@ def step_size_sweep(
     Args:
         problem: the problem.
         starts: starting points (see :func:`descend`).
-        learning_rates: rates to try (at least one; any order).
+        learning_rates: rates to try (at least one; any order; a rate given
+            twice is swept once, with a warning).
         optimizer: update rule; its other hyper-parameters are fixed by ``hyper``.
         hyper: one value per other hyper-parameter (e.g. ``{"momentum": 0.9}``).
         steps: step budget per run.
@@ -138,7 +140,21 @@ def step_size_sweep(
         edge of stability. ICLR. arXiv:2103.00065 (why full-batch training of
         networks hovers near ``2 / lr``).
     """
-    rates = np.asarray(sorted({float(r) for r in np.ravel(learning_rates)}), dtype=np.float64)
+    if np.ndim(learning_rates) > 1:
+        raise ParameterError(
+            f"learning_rates must be a 1-D list of rates; got an array of shape "
+            f"{np.shape(learning_rates)}. Give the rates as a flat list, e.g. "
+            "learning_rates=numpy.ravel(rates)."
+        )
+    given = [float(r) for r in np.ravel(learning_rates)]
+    rates = np.asarray(sorted(set(given)), dtype=np.float64)
+    if rates.size < len(given):
+        warnings.warn(
+            f"learning_rates lists {len(given) - rates.size} rate(s) more than once; each rate "
+            "is swept once (its row summarises all its runs). Pass distinct rates to silence this.",
+            UserWarning,
+            stacklevel=2,
+        )
     if rates.size == 0:
         raise ParameterError(
             "learning_rates needs at least one value; give a list of positive rates, e.g. "

@@ -1,10 +1,9 @@
 """The loss on a grid over a plane, and along a segment between two points.
 
-Grids are evaluated in compiled blocks: each block maps the loss over its
-points with ``jax.lax.map(..., batch_size=chunk)``, so memory is bounded by
-``chunk`` evaluations of the loss at a time whatever the grid or data size.
-Block sizes come from a few buckets, so changing the resolution or the span
-reuses compiled code.
+Grids are evaluated by :func:`~basinview.core.points.evaluate_points` in
+compiled blocks sized by the cost model, so memory is bounded by ``chunk``
+evaluations of the loss at a time whatever the grid or data size, and
+changing the resolution or the span reuses compiled code.
 """
 
 from __future__ import annotations
@@ -13,22 +12,13 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
-import jax
 import numpy as np
 import pandas as pd
 
-from ._tuning import (
-    TUNE_WORK_BYTES,
-    bucket,
-    chunk_size_for,
-    evaluation_bytes,
-    fastest,
-    progress_bar,
-)
 from .errors import ParameterError
 from .planes import Plane
-from .problem import Problem, loss_runtime_errors
-from .sharding import batch_devices, replicated, shard_batch, split
+from .points import evaluate_points, evaluate_points_sized, points_sizes
+from .problem import Problem
 
 __all__ = [
     "MAX_RESOLUTION",
@@ -36,20 +26,12 @@ __all__ = [
     "Surface",
     "evaluate_points",
     "evaluate_surface",
+    "points_sizes",
     "segment_profile",
     "span_ranges",
 ]
 
 MAX_RESOLUTION = 4001
-# One compiled call evaluates about this many bytes of loss intermediates
-# (tens of milliseconds): enough to hide the cost of a call, small enough for
-# a responsive progress bar.
-_CALL_BUDGET_BYTES = 2**30
-_MAX_POINTS_PER_CALL = 65536
-_TUNE_CHUNKS = (2, 8, 64)
-_TUNE_POINTS = 512
-# Tuning never tries chunks whose intermediates would exceed this (per device).
-_TUNE_MAX_CHUNK_BYTES = 128 * 2**20
 
 
 @dataclass(frozen=True, eq=False)
@@ -63,12 +45,16 @@ class Surface:
         loss: ``(len(b), len(a))`` array; ``loss[j, i]`` is the loss at
             ``plane.lift(a[i], b[j])``. Points where the loss is NaN or inf are
             NaN (gaps).
+        sizes: the program sizes it was computed with (``surface_chunk``,
+            ``surface_block``); pass them back as ``sizes=`` to recompute it
+            with the same program.
     """
 
     plane: Plane
     a: np.ndarray
     b: np.ndarray
     loss: np.ndarray
+    sizes: dict[str, int] | None = None
 
     @property
     def finite_fraction(self) -> float:
@@ -186,139 +172,6 @@ def _resolution(resolution: Any) -> tuple[int, int]:
     return int(res[0]), int(res[1])
 
 
-def _block_fn(problem: Problem, chunk: int, block: int, devices: tuple[Any, ...]) -> Any:
-    """Compiled loss over ``block`` points per device, ``chunk`` vectorised at a time."""
-
-    def build() -> Any:
-        def run(
-            ab: jax.Array, origin: jax.Array, d1: jax.Array, d2: jax.Array, data: Any
-        ) -> jax.Array:
-            def point(p: jax.Array) -> jax.Array:
-                return problem.flat_loss(origin + p[0] * d1 + p[1] * d2, data)
-
-            return jax.lax.map(point, ab, batch_size=chunk)
-
-        return shard_batch(run, devices, (0, None, None, None, None), 0)
-
-    return problem.compiled(("surface-block", chunk, block, devices), build)
-
-
-def _block_size(problem: Problem, chunk: int, per_device: int) -> int:
-    """Points per device and call: whole chunks, a bucketed count, a bounded amount of work."""
-    n_chunks = -(-per_device // chunk)
-    points = _CALL_BUDGET_BYTES // evaluation_bytes(problem)
-    points = min(max(points, 256), _MAX_POINTS_PER_CALL)
-    return chunk * min(bucket(n_chunks, minimum=1), max(1, points // chunk))
-
-
-class _Grid:
-    """Points, constants and data placed on the devices of one evaluation."""
-
-    def __init__(self, problem: Problem, devices: tuple[Any, ...], consts: list[np.ndarray]):
-        self.problem = problem
-        self.devices = devices
-        if len(devices) == 1:
-            self.consts = [jax.device_put(c, devices[0]) for c in consts]
-            self.data = problem.cached(
-                ("data-on", devices), lambda: jax.device_put(problem.data, devices[0])
-            )
-        else:
-            rep = replicated(devices)
-            self.consts = [jax.device_put(c, rep) for c in consts]
-            self.data = problem.cached(
-                ("data-on", devices), lambda: jax.device_put(problem.data, rep)
-            )
-
-    def launch(self, chunk: int, block: int, piece: np.ndarray) -> jax.Array:
-        """Start the evaluation of ``piece`` (``block * len(devices)`` points)."""
-        fn = _block_fn(self.problem, chunk, block, self.devices)
-        if len(self.devices) == 1:
-            placed = jax.device_put(piece, self.devices[0])
-        else:
-            placed = jax.device_put(piece, split(self.devices))
-        return fn(placed, *self.consts, self.data)
-
-
-def _padded(ab: np.ndarray, lo: int, size: int) -> np.ndarray:
-    piece = ab[lo : lo + size]
-    if piece.shape[0] < size:
-        piece = np.concatenate([piece, np.zeros((size - piece.shape[0], 2), dtype=ab.dtype)])
-    return piece
-
-
-def _tuned_chunk(problem: Problem, grid: _Grid, ab: np.ndarray) -> int:
-    """The fastest chunk size for this problem's large grids, timed once and kept.
-
-    Every candidate evaluates the same ``_TUNE_POINTS`` points per device.
-    """
-
-    def tune() -> int:
-        most = max(1, _TUNE_MAX_CHUNK_BYTES // evaluation_bytes(problem))
-        candidates = sorted({chunk_size_for(problem), *(c for c in _TUNE_CHUNKS if c <= most)})
-        candidates = [c for c in candidates if _TUNE_POINTS % c == 0]
-        piece = _padded(ab, 0, _TUNE_POINTS * len(grid.devices))
-
-        def run(chunk: int) -> Any:
-            return lambda: grid.launch(chunk, _TUNE_POINTS, piece).block_until_ready()
-
-        return int(fastest(candidates, run))
-
-    return int(problem.cached(("surface-chunk",), tune))
-
-
-def evaluate_points(
-    problem: Problem,
-    origin: np.ndarray,
-    d1: np.ndarray,
-    d2: np.ndarray,
-    ab: np.ndarray,
-    *,
-    chunk_size: int | None = None,
-    progress: bool | None = None,
-    devices: Any = None,
-) -> np.ndarray:
-    """Loss at ``origin + a * d1 + b * d2`` for each row ``(a, b)`` of ``ab``.
-
-    Non-finite values come back as NaN. Work is done in compiled blocks of
-    ``chunk_size`` points vectorised at a time. By default the chunk size
-    comes from the size of the loss's intermediates; for large grids a few
-    sizes are timed once per problem and the fastest is kept. ``devices``
-    (default: all devices JAX shows, see :func:`use_all_cores`) share the
-    points; the values do not depend on how many devices there are.
-    """
-    dtype = problem.dtype
-    ab = np.asarray(ab, dtype=dtype).reshape(-1, 2)
-    total = ab.shape[0]
-    if chunk_size is not None and (
-        isinstance(chunk_size, bool)
-        or not isinstance(chunk_size, (int, np.integer))
-        or chunk_size < 1
-    ):
-        raise ParameterError(f"chunk_size must be a positive integer; got {chunk_size!r}.")
-    devs = batch_devices(devices)
-    grid = _Grid(problem, devs, [np.asarray(x, dtype=dtype) for x in (origin, d1, d2)])
-    with loss_runtime_errors(problem, "the surface"):
-        if chunk_size is not None:
-            chunk = int(chunk_size)
-        elif total * evaluation_bytes(problem) >= TUNE_WORK_BYTES:
-            chunk = _tuned_chunk(problem, grid, ab)
-        else:
-            chunk = chunk_size_for(problem)
-        n_dev = len(devs)
-        block = _block_size(problem, chunk, -(-total // n_dev))
-        step = block * n_dev
-        # Launch every block first (JAX dispatches asynchronously), then collect.
-        pending = [grid.launch(chunk, block, _padded(ab, lo, step)) for lo in range(0, total, step)]
-        out = np.empty(len(pending) * step, dtype=dtype)
-        for i, result in enumerate(
-            progress_bar(pending, total=len(pending), show=progress, desc="surface")
-        ):
-            out[i * step : (i + 1) * step] = np.asarray(result)
-    out = out[:total]
-    out[~np.isfinite(out)] = np.nan
-    return out
-
-
 def evaluate_surface(
     problem: Problem,
     plane: Plane,
@@ -328,6 +181,8 @@ def evaluate_surface(
     chunk_size: int | None = None,
     progress: bool | None = None,
     devices: Any = None,
+    tune: bool = False,
+    sizes: Any = None,
 ) -> Surface:
     """The loss on a ``resolution`` grid of ``plane`` over ``span``.
 
@@ -345,6 +200,8 @@ def evaluate_surface(
         progress: show a progress bar (default: only for large grids).
         devices: devices that share the grid points: ``None`` (all that JAX
             shows), a count, or a list of devices.
+        tune: time a few chunk sizes once per problem instead of the cost model.
+        sizes: program sizes to reuse, as recorded in :attr:`Surface.sizes`.
 
     Caution: the surface is a 2-D slice of an n-dimensional loss. Its lowest
     point is not necessarily a minimum of the loss.
@@ -372,17 +229,11 @@ def evaluate_surface(
     aa, bb = np.meshgrid(a, b)
     ab = np.stack([aa.ravel(), bb.ravel()], axis=1)
     show = progress if progress is not None else (ra * rb > 250_000)
-    loss = evaluate_points(
-        problem,
-        plane.origin,
-        plane.d1,
-        plane.d2,
-        ab,
-        chunk_size=chunk_size,
-        progress=show,
-        devices=devices,
-    )
-    return Surface(plane=plane, a=a, b=b, loss=loss.reshape(rb, ra))
+    loss, used = evaluate_points_sized(
+        problem, plane.origin, plane.d1, plane.d2, ab, chunk_size=chunk_size, progress=show,
+        devices=devices, tune=tune, sizes=sizes,
+    )  # fmt: skip
+    return Surface(plane=plane, a=a, b=b, loss=loss.reshape(rb, ra), sizes=used.record())
 
 
 def segment_profile(

@@ -45,7 +45,8 @@ class ViewSpec:
     Attributes:
         plane: the plane of the slice and of the recorded paths.
         starts: where the runs begin.
-        span: ``((a_min, a_max), (b_min, b_max))`` of the surface grid.
+        span: half-width around ``plane.centre``, or ``((a_min, a_max), (b_min, b_max))``
+            in plane coordinates (parameter values on an axes plane).
         resolution: ``(points along a, points along b)``.
         optimizer: a rule name, an :class:`UpdateRule` or an optax object.
         learning_rate: the learning rates (runs = starts x rates x hyper grid).
@@ -54,6 +55,8 @@ class ViewSpec:
         grad_tol, loss_tol: convergence tolerances (None: by dtype).
         divergence_factor, batch_size, seed: as in :func:`descend`.
         note: a note kept in the recorded settings.
+        sizes: program sizes to reuse (``Settings.sizes`` of a record; empty:
+            from the cost model), so a recorded view reruns the same programs.
     """
 
     plane: Plane
@@ -70,6 +73,7 @@ class ViewSpec:
     batch_size: int | None = None
     seed: int = 0
     note: str = ""
+    sizes: Mapping[str, int] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "span", span_ranges(self.span, self.plane.centre))
@@ -128,6 +132,7 @@ class ViewSpec:
             batch_size=settings.batch_size,
             seed=settings.seed,
             note=settings.note,
+            sizes=dict(settings.sizes),
         )
 
     def single_hyper(self, hyper: Mapping[str, float] | None, what: str) -> dict[str, float]:

@@ -1,0 +1,219 @@
+"""The compiled program of a batch of descent runs: one run's step, vmapped.
+
+:func:`build_program` returns a jitted function stepping ``n_runs`` runs
+(per device) for up to ``n_steps`` steps. The step is written for ONE run
+(:func:`run_step`: evaluate, update, check convergence and divergence,
+freeze once stopped) and batched with ``vmap`` (or ``lax.map`` over groups
+of runs). A ``while_loop`` steps all runs together until the step budget
+is spent or every run has stopped; the loop carries a :class:`LoopState`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any, NamedTuple
+
+import jax
+import jax.numpy as jnp
+
+from .optimizers import Oracle, UpdateRule
+from .sharding import shard_batch
+
+__all__ = ["LoopState", "Records", "RunState", "build_program"]
+
+CODE_RUNNING, CODE_CONVERGED, CODE_DIVERGED = 0, 1, 2  # index into STATUSES
+
+
+class RunState(NamedTuple):
+    """The state of one run (batched: every field gains a leading run axis)."""
+
+    theta: jax.Array
+    opt_state: Any
+    loss: jax.Array
+    grad: jax.Array
+    status: jax.Array  # int32 code: 0 running / max_steps, 1 converged, 2 diverged
+    running: jax.Array  # bool
+    stop: jax.Array  # int32 steps taken when it stopped
+    start_loss: jax.Array  # loss at iterate 0
+    threshold: jax.Array  # rise above start_loss at which the run diverges
+
+
+class Row(NamedTuple):
+    """What one step records for one run (NaN once the run has stopped)."""
+
+    loss: jax.Array
+    grad_norm: jax.Array
+    a: jax.Array
+    b: jax.Array
+    off_plane: jax.Array
+    cosine: jax.Array
+
+
+class Records(NamedTuple):
+    """Recorded series, ``(T + 1, runs)`` each (``cosine``: ``(T, runs)``)."""
+
+    loss: jax.Array
+    grad_norm: jax.Array
+    a: jax.Array
+    b: jax.Array
+    off_plane: jax.Array
+    cosine: jax.Array
+
+
+class LoopState(NamedTuple):
+    """The carry of the step loop."""
+
+    step: jax.Array
+    runs: RunState
+    records: Records
+
+
+class Shared(NamedTuple):
+    """Arguments every run of a call shares."""
+
+    max_steps: jax.Array
+    tols: tuple[jax.Array, jax.Array, jax.Array]  # grad_tol, loss_tol, divergence factor
+    origin: jax.Array
+    proj: jax.Array
+    dirs: jax.Array
+    seed: jax.Array
+
+
+def build_program(
+    flat_loss: Callable[..., jax.Array],
+    rule: UpdateRule,
+    n_runs: int,
+    n_steps: int,
+    batch: int | None,
+    devices: tuple[Any, ...],
+    group: int = 0,
+) -> Any:
+    """Compile-once function running ``n_runs`` runs per device for up to ``n_steps`` steps.
+
+    The function takes ``(theta0, hyper, active, shared, start_index, data)``
+    and returns ``(final theta, status codes, stop steps, Records[,
+    preconditioner])``. Runs are vectorised ``group`` at a time (0: all).
+    With several devices each device runs its share in its own loop.
+    """
+    vg = jax.value_and_grad(flat_loss)
+
+    def batched(fn: Callable[..., Any], *args: Any) -> Any:
+        if not group or group >= n_runs:
+            return jax.vmap(fn)(*args)
+        return jax.lax.map(lambda a: fn(*a), args, batch_size=group)
+
+    def data_for(key: jax.Array, k: jax.Array, data: Any) -> Any:
+        if batch is None:
+            return data
+        n_rows = jax.tree_util.tree_leaves(data)[0].shape[0]
+        idx = jax.random.randint(jax.random.fold_in(key, k), (batch,), 0, n_rows)
+        return jax.tree_util.tree_map(lambda d: d[idx], data)
+
+    def project(theta: jax.Array, sh: Shared) -> tuple[jax.Array, jax.Array]:
+        diff = theta - sh.origin
+        ab = sh.proj @ diff
+        return ab, jnp.linalg.norm(diff - ab @ sh.dirs)
+
+    def run_start(theta, hyper, active, key, sh, data):
+        """One run at iterate 0: its state and its first recorded row."""
+        grad_tol, _loss_tol, div_factor = sh.tols
+        f0, g0 = vg(theta, data_for(key, 0, data))
+        gn0 = jnp.linalg.norm(g0)
+        ab, off = project(theta, sh)
+        bad = ~jnp.isfinite(f0) | ~jnp.isfinite(gn0)
+        status = jnp.where(bad, CODE_DIVERGED, jnp.where(gn0 <= grad_tol, CODE_CONVERGED, 0))
+        state = RunState(
+            theta=theta,
+            opt_state=rule.init(theta, hyper),
+            loss=f0,
+            grad=g0,
+            status=status.astype(jnp.int32),
+            running=active & (status == 0),
+            stop=jnp.int32(0),
+            start_loss=f0,
+            threshold=div_factor * jnp.maximum(jnp.abs(f0), 1.0),
+        )
+        return state, Row(f0, gn0, ab[0], ab[1], off, jnp.array(jnp.nan, theta.dtype))
+
+    def run_step(rs: RunState, hyper, key, k, sh: Shared, data) -> tuple[RunState, Row]:
+        """One step of one run; a stopped run keeps its state and records NaN."""
+        grad_tol, loss_tol, _div = sh.tols
+        batch_data = data_for(key, k, data)
+
+        def partial(th, i):
+            e = jnp.zeros_like(th).at[i].set(1)
+            return jax.jvp(lambda t: flat_loss(t, batch_data), (th,), (e,))[1]
+
+        theta1, opt1 = rule.step(rs.theta, rs.grad, rs.opt_state, hyper, Oracle(partial))
+        f1, g1 = vg(theta1, data_for(key, k + 1, data))
+        gn1, gn = jnp.linalg.norm(g1), jnp.linalg.norm(rs.grad)
+        diverged = ~jnp.isfinite(f1) | ~jnp.isfinite(gn1) | (f1 - rs.start_loss > rs.threshold)
+        converged = (gn1 <= grad_tol) & (
+            jnp.abs(f1 - rs.loss) <= loss_tol * jnp.maximum(1.0, jnp.abs(f1))
+        )
+        new_status = jnp.where(diverged, CODE_DIVERGED, jnp.where(converged, CODE_CONVERGED, 0))
+        on = rs.running
+
+        def keep(new, old):
+            return jnp.where(on, new, old)
+
+        ab, off = project(theta1, sh)
+        nan = jnp.array(jnp.nan, theta1.dtype)
+        cosine = jnp.sum(rs.grad * g1) / (gn * gn1)
+        row = Row(*(jnp.where(on, x, nan) for x in (f1, gn1, ab[0], ab[1], off, cosine)))
+        new = RunState(
+            theta=keep(theta1, rs.theta),
+            opt_state=jax.tree_util.tree_map(keep, opt1, rs.opt_state),
+            loss=keep(f1, rs.loss),
+            grad=keep(g1, rs.grad),
+            status=keep(new_status, rs.status).astype(jnp.int32),
+            running=on & (new_status == 0),
+            stop=keep(k + 1, rs.stop).astype(jnp.int32),
+            start_loss=rs.start_loss,
+            threshold=rs.threshold,
+        )
+        return new, row
+
+    def program(theta0, hyper, active, sh: Shared, start_index, data):
+        base = jax.random.key(sh.seed)
+        keys = jax.vmap(lambda i: jax.random.fold_in(base, i))(start_index)
+        runs0, row0 = batched(
+            lambda t, h, a, key: run_start(t, h, a, key, sh, data), theta0, hyper, active, keys
+        )
+
+        def series(first: jax.Array, length: int) -> jax.Array:
+            return jnp.full((length, n_runs), jnp.nan, first.dtype).at[0].set(first)
+
+        records = Records(
+            *(series(x, n_steps + 1) for x in row0[:5]),
+            cosine=jnp.full((n_steps, n_runs), jnp.nan, theta0.dtype),
+        )
+        init = LoopState(jnp.int32(0), runs0, records)
+
+        def cond(ls: LoopState) -> jax.Array:
+            return (ls.step < sh.max_steps) & jnp.any(ls.runs.running)
+
+        def body(ls: LoopState) -> LoopState:
+            k = ls.step
+            runs, row = batched(
+                lambda rs, h, key: run_step(rs, h, key, k, sh, data), ls.runs, hyper, keys
+            )
+            rec = ls.records
+            records = Records(
+                *(r.at[k + 1].set(x) for r, x in zip(rec[:5], row[:5])),
+                cosine=rec.cosine.at[k].set(row.cosine),
+            )
+            return LoopState(k + 1, runs, records)
+
+        end = jax.lax.while_loop(cond, body, init)
+        runs = end.runs
+        stop = jnp.where(runs.running, end.step, runs.stop)
+        out = (runs.theta, runs.status, stop, end.records)
+        if rule.preconditioner is None:
+            return out
+        return (*out, jax.vmap(rule.preconditioner)(runs.opt_state, hyper))
+
+    # Batch axis of each argument / output: runs are split, the rest is whole.
+    in_batch = (0, 0, 0, None, 0, None)
+    out_batch = (0, 0, 0, 1) if rule.preconditioner is None else (0, 0, 0, 1, 0)
+    return shard_batch(program, devices, in_batch, out_batch)
