@@ -16,7 +16,7 @@ from .core import *  # noqa: F403
 from .core import __all__ as _core_all
 
 _LAZY_MODULES = ("figures", "explorer", "report", "scenarios")
-_LAZY_ATTRS = {"Explorer": "explorer"}
+_LAZY_ATTRS = {"Explorer": "explorer", "write_report": "report", "report_html": "report"}
 
 __all__ = [*_core_all, *_LAZY_MODULES, *_LAZY_ATTRS, "__version__"]
 

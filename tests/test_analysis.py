@@ -53,7 +53,13 @@ def test_each_result_is_what_the_core_function_gives(problem, view, analysis):
     np.testing.assert_array_equal(analysis.basin_map.label, basins.label)
     assert analysis.plane is view.plane and analysis.starts is view.starts
     record = core.record_settings(
-        problem, plane=view.plane, span=2.0, resolution=25, starts=view.starts, runs=runs
+        problem,
+        plane=view.plane,
+        span=2.0,
+        resolution=25,
+        starts=view.starts,
+        runs=runs,
+        surface=surface,
     )
     assert dataclasses.replace(analysis.settings, created="") == dataclasses.replace(
         record, created=""
