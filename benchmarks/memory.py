@@ -99,7 +99,7 @@ def _basin(args: argparse.Namespace) -> tuple[Callable[[], Any], dict[str, Any]]
     plane = random_plane(problem, seed=1, normalise="filter")
     ra, rb = args.resolution
     try:
-        from basinview.core.minima import basin_map
+        from basinview.core.basins import basin_map
     except ImportError:
         basin_map = None
     steps = args.steps

@@ -18,6 +18,7 @@ from .analysis import (
     compute_sweep,
     compute_view,
 )
+from .basins import BasinMap, basin_map
 from .bends import CurvedPath, bezier_points, curved_path
 from .curvature import (
     Spectrum,
@@ -65,10 +66,8 @@ from .minima import (
     MAX_STEPS_LABEL,
     NOT_STATIONARY_LABEL,
     OUTCOMES,
-    BasinMap,
     CriticalPoint,
     Minima,
-    basin_map,
     classify,
     find_minima,
     refine,

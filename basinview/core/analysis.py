@@ -26,10 +26,11 @@ from typing import Any
 
 import numpy as np
 
+from .basins import BasinMap, basin_map
 from .curvature import hessian_spectrum, stability_bound
 from .descent import Runs, descend
 from .errors import ParameterError
-from .minima import BasinMap, Minima, basin_map, find_minima
+from .minima import Minima, find_minima
 from .optimizers import get_rule
 from .planes import Plane
 from .problem import Problem

@@ -31,10 +31,11 @@ import numpy as np
 import optax
 import pandas as pd
 
+from .checks import check_int, check_resolution
 from .errors import ParameterError
 from .planes import Plane, through_plane
 from .problem import Problem, loss_runtime_errors
-from .surface import Profile, _resolution, evaluate_points, segment_profile
+from .surface import Profile, evaluate_points, segment_profile
 
 __all__ = ["CurvedPath", "bezier_points", "curved_path"]
 
@@ -171,14 +172,6 @@ def _check_jitter(value: Any) -> float:
     return float(value)
 
 
-def _check_int(value: Any, name: str, low: int, high: int) -> int:
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, (int, np.integer))
-        or not low <= value <= high
-    ):
-        raise ParameterError(f"{name} must be an integer from {low} to {high}; got {value!r}.")
-    return int(value)
 
 
 def curved_path(
@@ -231,11 +224,11 @@ def curved_path(
     if dist == 0:
         raise ParameterError("start and end are the same point; a path needs two distinct points.")
     lr = _check_number(learning_rate, "learning_rate", 0.0, 1e6)
-    n_steps = _check_int(steps, "steps", 0, 10**7)
-    n_samples = _check_int(samples, "samples", 1, 4096)
+    n_steps = check_int(steps, "steps", 0, 10**7)
+    n_samples = check_int(samples, "samples", 1, 4096)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2**31:
         raise ParameterError(f"seed must be an integer from 0 to 2**31 - 1; got {seed!r}.")
-    res = _resolution(resolution)[0]
+    res = check_resolution(resolution)[0]
     if init is not None:
         c0 = problem.flatten(init, what="initial control point").astype(np.float64)
         if not np.all(np.isfinite(c0)):

@@ -24,9 +24,10 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .checks import finite_point, require_plane
 from .errors import ParameterError
 from .planes import Plane, flat_origin
-from .problem import Problem, require_plane
+from .problem import Problem
 
 __all__ = [
     "EXACT_LIMIT",
@@ -74,18 +75,13 @@ class Spectrum:
         return self.lambda_max / self.lambda_min
 
 
-def _point(problem: Problem, theta: Any) -> jax.Array:
-    flat = problem.flatten(theta, what="point")
-    if not np.all(np.isfinite(flat)):
-        raise ParameterError("the point contains NaN or inf; curvature needs a finite point.")
-    return jnp.asarray(flat, dtype=problem.dtype)
 
 
 def hessian_matrix(problem: Problem, theta: Any) -> np.ndarray:
     """The dense ``(n, n)`` Hessian at ``theta`` (use for small ``n`` only)."""
     problem.check_differentiable()
     fn = problem.compiled("hessian", lambda: jax.jit(jax.hessian(problem.flat_loss)))
-    h = np.asarray(fn(_point(problem, theta), problem.data), dtype=np.float64)
+    h = np.asarray(fn(finite_point(problem, theta), problem.data), dtype=np.float64)
     return 0.5 * (h + h.T)
 
 
@@ -154,7 +150,7 @@ def hessian_spectrum(
         )
     if method not in ("auto", "exact", "lanczos"):
         raise ParameterError(f"method must be 'auto', 'exact' or 'lanczos'; got {method!r}.")
-    point = _point(problem, theta)
+    point = finite_point(problem, theta)
     value = float(problem.value(point))
     if not np.isfinite(value):
         raise ParameterError(
@@ -319,7 +315,7 @@ def preconditioned_sharpness(
     if method == "exact" or (method == "auto" and n <= EXACT_LIMIT):
         h = hessian_matrix(problem, theta)
         return float(np.linalg.eigvalsh(h * s[:, None] * s[None, :])[-1])
-    point = _point(problem, theta)
+    point = finite_point(problem, theta)
     dtype = problem.dtype
 
     def matvec(v: np.ndarray) -> np.ndarray:
@@ -336,7 +332,7 @@ def gauss_newton_matrix(problem: Problem, theta: Any, residuals: Callable[..., A
     For a loss ``sum(residuals**2)`` the Hessian is ``2 J^T J`` plus terms
     weighted by the residuals; near a good fit ``2 J^T J`` dominates.
     """
-    point = _point(problem, theta)
+    point = finite_point(problem, theta)
 
     def flat_res(t: jax.Array) -> jax.Array:
         return jnp.ravel(residuals(problem.flattener.unravel(t), *problem.data))
@@ -355,7 +351,7 @@ def standard_errors(problem: Problem, theta: Any, residuals: Callable[..., Any])
         Bates, D. M. & Watts, D. G. (1988). Nonlinear Regression Analysis and
         Its Applications. Wiley, ch. 2 (from memory).
     """
-    point = _point(problem, theta)
+    point = finite_point(problem, theta)
     r = np.ravel(
         np.asarray(residuals(problem.flattener.unravel(point), *problem.data), dtype=np.float64)
     )

@@ -36,7 +36,7 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
-from .curvature import _point
+from .checks import check_int, finite_point
 from .errors import ParameterError
 from .problem import Problem, loss_runtime_errors
 
@@ -221,14 +221,6 @@ def _outliers(
     return pd.DataFrame(rows).sort_values("value", ascending=False, ignore_index=True)
 
 
-def _check_int(value: Any, name: str, low: int, high: int) -> int:
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, (int, np.integer))
-        or not low <= value <= high
-    ):
-        raise ParameterError(f"{name} must be an integer from {low} to {high}; got {value!r}.")
-    return int(value)
 
 
 def hessian_density(
@@ -274,11 +266,11 @@ def hessian_density(
         trace of an implicit symmetric positive semi-definite matrix. J. ACM 58(2).
     """
     n = problem.size
-    n_probes = _check_int(probes, "probes", 1, 4096)
-    m = min(_check_int(steps, "steps", 1, 100_000), n)
+    n_probes = check_int(probes, "probes", 1, 4096)
+    m = min(check_int(steps, "steps", 1, 100_000), n)
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2**31:
         raise ParameterError(f"seed must be an integer from 0 to 2**31 - 1; got {seed!r}.")
-    n_grid = _check_int(grid_size, "grid_size", 16, 100_000)
+    n_grid = check_int(grid_size, "grid_size", 16, 100_000)
     if not (isinstance(gap, (int, float)) and 0 < gap < 1):
         raise ParameterError(f"gap must be a number between 0 and 1; got {gap!r}.")
     if not (isinstance(tail, (int, float)) and 0 <= tail < 1):
@@ -287,7 +279,7 @@ def hessian_density(
         isinstance(width, (int, float)) and np.isfinite(width) and width > 0
     ):
         raise ParameterError(f"width must be a positive number (or None); got {width!r}.")
-    point = _point(problem, theta)
+    point = finite_point(problem, theta)
     value = float(problem.value(point))
     if not np.isfinite(value):
         raise ParameterError(

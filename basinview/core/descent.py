@@ -244,8 +244,9 @@ def descend(
     }
     theta_all = start_set.points[start_index].astype(problem.dtype)
 
-    config = config.with_sizes(_sizes(problem, config, n_runs, theta_all, devs))
-    per_device = config.sizes.runs_per_call
+    chosen = _sizes(problem, config, n_runs, theta_all, devs)
+    config = config.with_sizes(chosen)
+    per_device = chosen.runs_per_call
     if n_runs <= per_device:
         devs = devs[:1]  # one call's worth of runs: splitting it would change its shapes
     steps_b = bucket(config.steps, minimum=8)
@@ -257,7 +258,7 @@ def descend(
             steps_b,
             config.batch_size,
             devs,
-            config.sizes.group,
+            chosen.group,
         ),
         lambda: build_program(
             problem.flat_loss,
@@ -266,7 +267,7 @@ def descend(
             steps_b,
             config.batch_size,
             devs,
-            config.sizes.group,
+            chosen.group,
         ),
     )
     with loss_runtime_errors(problem, "descent runs"):

@@ -69,14 +69,14 @@ class LoopState(NamedTuple):
 
 
 class Shared(NamedTuple):
-    """Arguments every run of a call shares."""
+    """Arguments every run of a call shares (host arrays until put on the devices)."""
 
-    max_steps: jax.Array
-    tols: tuple[jax.Array, jax.Array, jax.Array]  # grad_tol, loss_tol, divergence factor
-    origin: jax.Array
-    proj: jax.Array
-    dirs: jax.Array
-    seed: jax.Array
+    max_steps: Any
+    tols: tuple[Any, ...]  # grad_tol, loss_tol, divergence factor
+    origin: Any
+    proj: Any
+    dirs: Any
+    seed: Any
 
 
 def build_program(
@@ -184,9 +184,11 @@ def build_program(
         def series(first: jax.Array, length: int) -> jax.Array:
             return jnp.full((length, n_runs), jnp.nan, first.dtype).at[0].set(first)
 
-        records = Records(
-            *(series(x, n_steps + 1) for x in row0[:5]),
-            cosine=jnp.full((n_steps, n_runs), jnp.nan, theta0.dtype),
+        records = Records._make(
+            [
+                *(series(x, n_steps + 1) for x in row0[:5]),
+                jnp.full((n_steps, n_runs), jnp.nan, theta0.dtype),  # cosine
+            ]
         )
         init = LoopState(jnp.int32(0), runs0, records)
 
@@ -199,9 +201,11 @@ def build_program(
                 lambda rs, h, key: run_step(rs, h, key, k, sh, data), ls.runs, hyper, keys
             )
             rec = ls.records
-            records = Records(
-                *(r.at[k + 1].set(x) for r, x in zip(rec[:5], row[:5])),
-                cosine=rec.cosine.at[k].set(row.cosine),
+            records = Records._make(
+                [
+                    *(r.at[k + 1].set(x) for r, x in zip(rec[:5], row[:5])),
+                    rec.cosine.at[k].set(row.cosine),
+                ]
             )
             return LoopState(k + 1, runs, records)
 

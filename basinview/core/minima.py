@@ -34,31 +34,26 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from .descent import Runs, descend
+from .descent import Runs
 from .errors import MinimaWarning, NoCriticalPointError, ParameterError
 from .identities import critical_points, default_rtol, length_scale
-from .planes import Plane
 from .problem import Problem
-from .starts import grid_starts
 from .stationary import CriticalPoint, classify, refine, refine_point
-from .surface import _resolution, span_ranges
 
 __all__ = [
     "DIVERGED_LABEL",
     "MAX_STEPS_LABEL",
     "NOT_STATIONARY_LABEL",
     "OUTCOMES",
-    "BasinMap",
     "CriticalPoint",
     "Minima",
-    "basin_map",
     "classify",
     "find_minima",
+    "outcome_rows",
     "refine",
 ]
 
@@ -74,7 +69,7 @@ OUTCOMES: dict[int, str] = {
 KINDS = ("minimum", "saddle", "maximum", "degenerate")
 
 
-def _outcome_rows(minima: Minima, label: np.ndarray) -> pd.DataFrame:
+def outcome_rows(minima: Minima, label: np.ndarray) -> pd.DataFrame:
     """Share of ``label`` per point, then one row per outcome label."""
     label = np.asarray(label).ravel()
     total = max(label.size, 1)
@@ -168,7 +163,7 @@ class Minima:
     @property
     def outcomes(self) -> pd.DataFrame:
         """Runs per point, then per outcome (max_steps, not stationary, diverged), with shares."""
-        return _outcome_rows(self, self.assignment)
+        return outcome_rows(self, self.assignment)
 
     def to_frame(self) -> pd.DataFrame:
         return self.table
@@ -364,85 +359,4 @@ def find_minima(
         param_labels=problem.labels,
         names=tuple(critical_points(problem).letters[i] for i in ids),
         colour_index=ids,
-    )
-
-
-@dataclass(frozen=True, eq=False)
-class BasinMap:
-    """Which critical point each start on a grid of a plane reaches.
-
-    Attributes:
-        plane: the plane of the starts.
-        a, b: grid coordinates.
-        label: ``(len(b), len(a))``; index into ``minima.points``, or an
-            outcome label (:data:`OUTCOMES`: ``-1`` diverged, ``-2`` max_steps,
-            ``-3`` not stationary).
-        minima: the critical points found.
-        runs: the runs, one per grid node (row-major in b, then a).
-    """
-
-    plane: Plane
-    a: np.ndarray
-    b: np.ndarray
-    label: np.ndarray
-    minima: Minima
-    runs: Runs
-
-    @property
-    def shares(self) -> pd.DataFrame:
-        """Starts and share per basin (by letter), then per outcome: max_steps, not stationary, diverged."""
-        return _outcome_rows(self.minima, self.label).rename(columns={"runs": "starts"})
-
-
-def basin_map(
-    problem: Problem,
-    plane: Plane,
-    *,
-    span: Any = 1.0,
-    resolution: Any = 41,
-    optimizer: Any = "gradient_descent",
-    learning_rate: float = 0.01,
-    hyper: dict[str, Any] | None = None,
-    steps: int = 1000,
-    grad_tol: float | None = None,
-    loss_tol: float | None = None,
-    xtol: float | None = None,
-    ftol: float | None = None,
-    progress: bool | None = None,
-) -> BasinMap:
-    """Run descent from every node of a grid on ``plane`` and label each by where it ends.
-
-    One learning rate and one hyper-parameter setting (a basin map for a
-    sweep would mix basins of different dynamics). Runs are batched and
-    split into bounded calls; ``progress`` shows a bar for long maps.
-    """
-    lr = np.asarray(learning_rate, dtype=float)
-    if lr.ndim != 0:
-        raise ParameterError("a basin map uses one learning rate; call basin_map once per rate.")
-    if any(np.ndim(v) != 0 for v in (hyper or {}).values()):
-        raise ParameterError("a basin map uses one value per hyper-parameter.")
-    (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
-    ra, rb = _resolution(resolution)
-    starts = grid_starts(plane, span=((a0, a1), (b0, b1)), resolution=(ra, rb))
-    show = progress if progress is not None else ra * rb > 4096
-    runs = descend(
-        problem,
-        starts,
-        optimizer=optimizer,
-        learning_rate=float(lr),
-        hyper=hyper,
-        steps=steps,
-        plane=plane,
-        grad_tol=grad_tol,
-        loss_tol=loss_tol,
-        progress=show,
-    )
-    minima = find_minima(problem, runs, xtol=xtol, ftol=ftol)
-    return BasinMap(
-        plane=plane,
-        a=np.linspace(a0, a1, ra),
-        b=np.linspace(b0, b1, rb),
-        label=minima.assignment.reshape(rb, ra),
-        minima=minima,
-        runs=runs,
     )

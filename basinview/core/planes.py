@@ -35,8 +35,9 @@ from typing import Any
 
 import numpy as np
 
+from .checks import check_seed, require_plane
 from .errors import ParameterError
-from .problem import Problem, require_plane
+from .problem import Problem
 
 __all__ = [
     "COORDINATES",
@@ -354,7 +355,7 @@ def random_plane(
     if normalise not in NORMALISATIONS:
         raise ParameterError(f"normalise must be one of {NORMALISATIONS}; got {normalise!r}.")
     theta, origin_list = flat_origin(problem, origin)
-    seed = _check_seed(seed)
+    seed = check_seed(seed)
     draws = np.random.default_rng(seed).standard_normal((2, problem.size))
     dirs = []
     for d in draws:
@@ -426,8 +427,3 @@ def through_plane(problem: Problem, p0: Any, p1: Any, p2: Any) -> Plane:
     titles = ("offset towards p1", "offset towards p2")
     return Plane(pts[0].astype(dtype), d1.astype(dtype), d2.astype(dtype), titles, spec)
 
-
-def _check_seed(seed: Any) -> int:
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
-        raise ParameterError(f"seed must be a non-negative integer; got {seed!r}.")
-    return int(seed)

@@ -9,13 +9,9 @@ readable label for every coordinate.
 
 from __future__ import annotations
 
-import contextlib
-import functools
 import hashlib
-import inspect
-import re
 import warnings
-from collections.abc import Callable, Hashable, Iterator
+from collections.abc import Callable, Hashable
 from typing import Any
 
 import jax
@@ -24,8 +20,16 @@ import numpy as np
 
 from .errors import LossError, ParameterError
 from .lint import lint_ignored, lint_loss
+from .loss_checks import (
+    RAISED_HELP,
+    TRACE_ERRORS,
+    TRACE_HELP,
+    check_signature,
+    loss_name,
+    loss_runtime_errors,
+)
 from .pytrees import Flattener, make_flattener
-from .rows import REDUCTIONS, _check_chunking, _row_count, accumulate_rows
+from .rows import REDUCTIONS, accumulate_rows, check_chunking, row_count
 
 __all__ = [
     "REDUCTIONS",
@@ -33,69 +37,10 @@ __all__ = [
     "accumulate_rows",
     "loss_name",
     "loss_runtime_errors",
-    "require_plane",
 ]
 
 COMPILED_MEMO_SIZE = 32
 """Compiled functions a Problem keeps (least recently used ones are dropped)."""
-
-_TRACE_ERRORS = (
-    jax.errors.ConcretizationTypeError,
-    jax.errors.TracerBoolConversionError,
-    jax.errors.TracerIntegerConversionError,
-    jax.errors.TracerArrayConversionError,
-)
-
-_TRACE_HELP = (
-    "JAX evaluates the loss on abstract (traced) arrays, so the loss must not "
-    "branch on parameter or data values with Python `if`/`while`, convert them "
-    "with float()/int()/bool(), or call NumPy (np.*) on them. Use jnp.where, "
-    "jax.lax.cond or jax.lax.fori_loop and jax.numpy instead."
-)
-
-
-def loss_name(loss: Callable[..., Any]) -> str:
-    """Qualified name of a loss function, for records (``module.function``)."""
-    target = loss
-    while isinstance(target, functools.partial):
-        target = target.func
-    module = getattr(target, "__module__", None) or "?"
-    qual = getattr(target, "__qualname__", None) or type(target).__qualname__
-    return f"{module}.{qual}"
-
-
-_RAISED_HELP = "Call loss(params, *data) yourself on the same inputs to see the full traceback."
-
-_ERROR_LINE = re.compile(r"^\s*([A-Za-z_][\w.]*(?:Error|Exception)): (.+)$")
-
-
-def _runtime_reason(exc: BaseException) -> str:
-    """The user's error message out of a JAX run-time error (last ``XxxError: msg`` line)."""
-    lines = str(exc).splitlines()
-    found = [m for m in map(_ERROR_LINE.match, lines) if m]
-    if found:
-        return f"{found[-1].group(1).lstrip('_')}: {found[-1].group(2)}"
-    return lines[0] if lines else type(exc).__name__
-
-
-@contextlib.contextmanager
-def loss_runtime_errors(problem: Problem, what: str) -> Iterator[None]:
-    """Turn an error raised while a compiled loss runs into a :class:`LossError`.
-
-    A loss may check its inputs at run time (``equinox.error_if``, a host
-    callback that raises); JAX then stops the whole batch with a
-    ``JaxRuntimeError`` whose message buries the user's own text.
-    """
-    try:
-        yield
-    except jax.errors.JaxRuntimeError as exc:
-        raise LossError(
-            f"the loss {problem.name} raised an error while computing {what}: "
-            f"{_runtime_reason(exc)}. An error stops the whole batch; to let only the "
-            "affected points stop, return NaN there instead, e.g. "
-            "jnp.where(bad, jnp.nan, value), and basinview marks them (gaps in a "
-            "surface, 'diverged' runs)."
-        ) from exc
 
 
 def _as_data(data: tuple[Any, ...]) -> tuple[Any, ...]:
@@ -178,14 +123,14 @@ class Problem:
                 f"loss must be a function loss(params, *data) -> scalar; got a "
                 f"{type(loss).__name__}."
             )
-        _check_signature(loss, len(data))
+        check_signature(loss, len(data))
         ignore = lint_ignored(lint)
         flattener, theta0 = make_flattener(params)
         self._loss = loss
         self._params = params
         self._flat = flattener
         self._data = _as_data(data)
-        self._chunk_rows, self._reduction = _check_chunking(self._data, data_chunk_rows, reduction)
+        self._chunk_rows, self._reduction = check_chunking(self._data, data_chunk_rows, reduction)
         self._name = name or loss_name(loss)
         self._compiled: dict[Hashable, Callable[..., Any]] = {}
         self._cache: dict[Hashable, Any] = {}
@@ -412,10 +357,10 @@ class Problem:
         theta = jnp.asarray(self._theta0)
         try:
             out = jax.eval_shape(self.flat_loss, theta, self._data)
-        except _TRACE_ERRORS as exc:
+        except TRACE_ERRORS as exc:
             raise LossError(
                 f"the loss {self._name} cannot be traced by JAX: "
-                f"{type(exc).__name__}. {_TRACE_HELP}\nOriginal error: "
+                f"{type(exc).__name__}. {TRACE_HELP}\nOriginal error: "
                 f"{str(exc).splitlines()[0]}"
             ) from exc
         except TypeError as exc:
@@ -429,13 +374,13 @@ class Problem:
                 ) from exc
             raise LossError(
                 f"the loss {self._name} raised TypeError on the given parameters and data: "
-                f"{text.splitlines()[0] if text else exc!r}. {_RAISED_HELP}"
+                f"{text.splitlines()[0] if text else exc!r}. {RAISED_HELP}"
             ) from exc
         except Exception as exc:
             raise LossError(
                 f"the loss {self._name} raised {type(exc).__name__} on the given "
                 f"parameters and data: {str(exc).splitlines()[0] if str(exc) else exc!r}. "
-                + _RAISED_HELP
+                + RAISED_HELP
             ) from exc
         if not hasattr(out, "shape") or out.shape != ():
             shape = getattr(out, "shape", type(out).__name__)
@@ -462,7 +407,7 @@ class Problem:
 
     def _check_row_contract(self, dtype: Any) -> None:
         """The chunked loss equals the whole loss on the first few rows."""
-        rows = min(_row_count(self._data), 7)
+        rows = min(row_count(self._data), 7)
         if rows < 2:
             return
         sub = jax.tree_util.tree_map(lambda a: a[:rows], self._data)
@@ -482,40 +427,3 @@ class Problem:
 
     def _data_shapes(self) -> list[Any]:
         return [jax.tree_util.tree_map(lambda a: tuple(a.shape), d) for d in self._data]
-
-
-def _check_signature(loss: Callable[..., Any], n_data: int) -> None:
-    try:
-        sig = inspect.signature(loss)
-    except (TypeError, ValueError):
-        return
-    try:
-        sig.bind(object(), *([object()] * n_data))
-    except TypeError as exc:
-        raise LossError(
-            f"the loss must accept (params, *data) with {n_data} data argument(s); "
-            f"{loss_name(loss)}{sig} cannot be called that way ({exc}). Pass the data "
-            "in the order the loss expects, or wrap the loss, e.g. "
-            "lambda params, x, y: my_loss(x, y, params)."
-        ) from None
-
-
-def require_plane(problem: Problem, what: str) -> None:
-    """Raise a :class:`ParameterError` that can be followed if ``problem`` has one parameter.
-
-    Called wherever a plane is needed (``what`` names the caller, e.g.
-    ``"axes_plane"``); descent, step-size sweeps, minima and profiles need
-    no plane and work with one parameter.
-    """
-    if problem.size >= 2:
-        return
-    label = problem.labels[0]
-    raise ParameterError(
-        f"{what} needs a plane of two coordinates, but this problem has one parameter "
-        f"({label!r}): there is no 2-D slice to draw. Without a plane you can still use "
-        "descend(problem, starts) (its paths record the parameter itself), "
-        "step_size_sweep, find_minima and segment_profile(problem, a, b) for the loss "
-        "along the line between two values; the Explorer and `python -m basinview "
-        "report` draw planes, so give them a model with at least two parameters (e.g. "
-        "add an intercept, {'w': w, 'b': 0.0})."
-    )

@@ -22,7 +22,7 @@ REDUCTIONS = ("mean", "sum")
 """How a loss combines its rows: ``"mean"`` (e.g. ``jnp.mean``) or ``"sum"``."""
 
 
-def _row_count(data: tuple[Any, ...]) -> int:
+def row_count(data: tuple[Any, ...]) -> int:
     return int(jax.tree_util.tree_leaves(data)[0].shape[0])
 
 
@@ -39,7 +39,7 @@ def accumulate_rows(
     ``rows``, not with the number of rows of the data. A last, shorter
     chunk takes the remaining rows.
     """
-    n = _row_count(data)
+    n = row_count(data)
     full, rest = divmod(n, rows)
     if full == 0 or (full == 1 and rest == 0):
         return loss(params, *data)
@@ -65,7 +65,7 @@ def accumulate_rows(
     return total
 
 
-def _check_chunking(
+def check_chunking(
     data: tuple[Any, ...], rows: Any, reduction: Any
 ) -> tuple[int | None, str | None]:
     if rows is None:

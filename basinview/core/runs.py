@@ -99,7 +99,7 @@ class Runs:
             >>> from basinview.core import Problem, descend
             >>> prob = Problem(lambda p: p[0] ** 2 + p[1] ** 2, jnp.zeros(2))
             >>> runs = descend(prob, jnp.array([1.0, 0.0]), learning_rate=0.25, steps=20)
-            >>> list(runs.steps_to_loss(0.01))  # the loss quarters each step
+            >>> runs.steps_to_loss(0.01).tolist()  # the loss quarters each step
             [4]
         """
         try:

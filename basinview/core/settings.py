@@ -26,13 +26,14 @@ from typing import Any
 import numpy as np
 
 from .._version import __version__
+from .checks import check_resolution
 from .descent import Runs
 from .errors import FingerprintWarning, SettingsError
 from .planes import Plane
 from .problem import Problem
 from .settings_json import MAX_SETTINGS_BYTES, SCHEMA_VERSION, fields_from_raw, parse
 from .starts import Starts
-from .surface import Surface, _resolution, span_ranges
+from .surface import Surface, span_ranges
 
 __all__ = [
     "SCHEMA_VERSION",
@@ -236,8 +237,14 @@ def record_settings(
     ``sizes`` records the program sizes the runs (and ``surface``, if given)
     used, so :func:`compute_view` recomputes them with the same programs.
     """
+    if runs.config is None:
+        raise SettingsError(
+            "these runs carry no DescentConfig, so their settings cannot be recorded; "
+            "record the Runs that descend returned."
+        )
     cfg = runs.config.record()
-    sizes = {**runs.config.sizes.record(), **((surface.sizes or {}) if surface else {})}
+    run_sizes = runs.config.sizes.record() if runs.config.sizes is not None else {}
+    sizes = {**run_sizes, **((surface.sizes or {}) if surface else {})}
     return Settings(
         loss_name=problem.name,
         fingerprint=problem.fingerprint,
@@ -245,7 +252,7 @@ def record_settings(
         dtype=str(problem.dtype),
         plane=json.loads(json.dumps(plane.spec)),
         span=span_ranges(span, plane.centre),
-        resolution=_resolution(resolution),
+        resolution=check_resolution(resolution),
         starts=json.loads(json.dumps(starts.spec)),
         optimizer=cfg["optimizer"],
         learning_rate=tuple(float(x) for x in cfg["learning_rate"]),

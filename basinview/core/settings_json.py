@@ -11,9 +11,10 @@ import json
 import math
 from typing import Any
 
+from .checks import check_resolution
 from .descent import MAX_STEPS
 from .errors import SettingsError
-from .surface import _resolution, span_ranges
+from .surface import span_ranges
 
 __all__ = [
     "MAX_DEPTH",
@@ -190,7 +191,7 @@ def fields_from_raw(raw: Any, names: set[str], required: set[str]) -> dict[str, 
     if not all(isinstance(r, int) and not isinstance(r, bool) for r in res_raw):
         raise _bad(f"settings field 'resolution' must hold integers; got {res_raw!r}.")
     try:
-        resolution = _resolution(tuple(res_raw))
+        resolution = check_resolution(tuple(res_raw))
     except Exception as exc:
         raise _bad(f"settings field 'resolution' is invalid: {exc}") from None
     hyper_raw = _expect(raw, "hyper", (dict,), "an object of lists")

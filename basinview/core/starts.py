@@ -19,10 +19,11 @@ from typing import Any
 import jax
 import numpy as np
 
+from .checks import check_resolution, check_seed
 from .errors import BasinviewError, ParameterError
-from .planes import Plane, _check_seed
+from .planes import Plane
 from .problem import Problem, loss_name
-from .surface import _resolution, span_ranges
+from .surface import span_ranges
 
 __all__ = [
     "MAX_STARTS",
@@ -108,7 +109,7 @@ def grid_starts(plane: Plane, *, span: Any = 1.0, resolution: Any = 21) -> Start
         [[2.0, 1.0], [3.0, 1.0], [4.0, 1.0]]
     """
     (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
-    ra, rb = _resolution(resolution)
+    ra, rb = check_resolution(resolution)
     if ra * rb > MAX_STARTS:
         raise ParameterError(
             f"a {ra} x {rb} grid has more than {MAX_STARTS} starts; lower the resolution "
@@ -142,7 +143,7 @@ def random_starts(
     count = _check_count(count)
     if not (np.isfinite(scale) and scale > 0):
         raise ParameterError(f"scale must be a positive number; got {scale!r}.")
-    seed = _check_seed(seed)
+    seed = check_seed(seed)
     c = problem.theta0 if center is None else problem.flatten(center, what="center")
     noise = np.random.default_rng(seed).standard_normal((count, problem.size))
     pts = (c.astype(np.float64) + scale * noise).astype(problem.dtype)
@@ -171,7 +172,7 @@ def initializer_starts(
     same seed and count.
     """
     count = _check_count(count)
-    seed = _check_seed(seed)
+    seed = check_seed(seed)
     if not callable(init):
         raise ParameterError("init must be a function init(key) -> params.")
     keys = jax.random.split(jax.random.key(seed), count)

@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from .checks import MAX_RESOLUTION, check_resolution
 from .errors import ParameterError
 from .planes import Plane
 from .points import evaluate_points, evaluate_points_sized, points_sizes
@@ -31,7 +32,6 @@ __all__ = [
     "span_ranges",
 ]
 
-MAX_RESOLUTION = 4001
 
 
 @dataclass(frozen=True, eq=False)
@@ -155,21 +155,6 @@ def span_ranges(
     return (float(arr[0, 0]), float(arr[0, 1])), (float(arr[1, 0]), float(arr[1, 1]))
 
 
-def _resolution(resolution: Any) -> tuple[int, int]:
-    res = np.asarray(resolution)
-    if res.shape == ():
-        res = np.array([res, res])
-    if res.shape != (2,) or not np.issubdtype(res.dtype, np.integer):
-        raise ParameterError(
-            f"resolution must be an integer or a pair of integers; got {resolution!r}."
-        )
-    if np.any(res < 2) or np.any(res > MAX_RESOLUTION):
-        raise ParameterError(
-            f"resolution must be between 2 and {MAX_RESOLUTION} points per axis; got "
-            f"{res.tolist()}. Larger grids take too much memory and time; zoom in "
-            "with span instead."
-        )
-    return int(res[0]), int(res[1])
 
 
 def evaluate_surface(
@@ -223,7 +208,7 @@ def evaluate_surface(
             "build the plane from this problem."
         )
     (a0, a1), (b0, b1) = span_ranges(span, plane.centre)
-    ra, rb = _resolution(resolution)
+    ra, rb = check_resolution(resolution)
     a = np.linspace(a0, a1, ra)
     b = np.linspace(b0, b1, rb)
     aa, bb = np.meshgrid(a, b)
@@ -259,7 +244,7 @@ def segment_profile(
     p1 = problem.flatten(end, what="segment end").astype(np.float64)
     if not (np.all(np.isfinite(p0)) and np.all(np.isfinite(p1))):
         raise ParameterError("segment endpoints must be finite.")
-    res = _resolution(resolution)[0]
+    res = check_resolution(resolution)[0]
     if not (np.isfinite(extend) and 0 <= extend <= 10):
         raise ParameterError(f"extend must be between 0 and 10; got {extend!r}.")
     inner = np.linspace(0.0, 1.0, res)

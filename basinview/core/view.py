@@ -13,13 +13,14 @@ from typing import Any
 
 import numpy as np
 
+from .checks import check_resolution
 from .errors import ParameterError, SettingsError
 from .plane_specs import plane_from_spec, upgrade_record
 from .planes import Plane
 from .problem import Problem
 from .settings import Settings
 from .starts import Starts, starts_from_spec
-from .surface import _resolution, span_ranges
+from .surface import span_ranges
 
 __all__ = ["ViewSpec"]
 
@@ -77,7 +78,7 @@ class ViewSpec:
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "span", span_ranges(self.span, self.plane.centre))
-        object.__setattr__(self, "resolution", _resolution(self.resolution))
+        object.__setattr__(self, "resolution", check_resolution(self.resolution))
         object.__setattr__(self, "learning_rate", _floats(self.learning_rate, "learning_rate"))
         hyper = {str(k): _floats(v, str(k)) for k, v in dict(self.hyper).items()}
         object.__setattr__(self, "hyper", hyper)

@@ -73,7 +73,7 @@ def basin_figure(
     contour lines of the loss are drawn on top.
 
     Args:
-        basin_map: a :class:`~basinview.core.minima.BasinMap`.
+        basin_map: a :class:`~basinview.core.basins.BasinMap`.
         surface: optional surface on the same plane, drawn as contour lines.
         title: figure title.
     """
