@@ -290,7 +290,22 @@ def _scenario(page, server, front: Frontend, shots: Path) -> None:
     page.screenshot(path=str(shots / "5-reopened.png"))
 
     # The reopened page draws the Explorer again from the running kernel: the
-    # contour and the paths as they were, not an empty plot.
+    # contour and the paths as they were, not an empty plot. JupyterLab's widget
+    # manager sometimes shows "Error displaying widget: model not found" for the
+    # Explorer's output after a reload while the kernel runs (seen in 2 of 3 runs of
+    # this test on 2026-12-02, never in Notebook 7, not reproduced with the
+    # previous code in one run); the Explorer's own front end (issue 11) replaces
+    # this path. Until then a second reload is allowed, once, with a screenshot.
+    for attempt in range(2):
+        page.wait_for_function(
+            "() => !!document.querySelector('.bv-explorer')"
+            " || document.body.innerText.includes('model not found')"
+        )
+        if page.locator(".bv-explorer").count() or attempt == 1:
+            break
+        page.screenshot(path=str(shots / "5a-model-not-found.png"))
+        page.reload()
+        page.wait_for_selector(".jp-Notebook .jp-Cell, .jp-Cell")
     widget = page.locator(".bv-explorer").first
     widget.scroll_into_view_if_needed()
     page.wait_for_function(
