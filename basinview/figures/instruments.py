@@ -22,13 +22,12 @@ from ..core.surface import Surface
 from ..core.trajectory import TrajectoryPlane
 from .build import FigureSpec
 from .levels import choose_levels
+from .slices import contour_trace
 from .style import (
     OKABE_ITO,
-    SURFACE_SCALE,
     add_note,
     base_layout,
     category_colour,
-    colour_scale,
     uid,
 )
 
@@ -65,29 +64,15 @@ def trajectory_figure(
         )
     plane = track.plane
     lv = choose_levels(surface.loss, levels)
-    z = lv.apply(surface.loss)
     fig = FigureSpec()
-    bar = {"title": {"text": lv.title, "side": "right"}, "thickness": 14}
-    ticks = lv.ticks(z)
-    if ticks is not None:
-        bar["tickvals"], bar["ticktext"] = ticks
     fig.add_trace(
-        {
-            "type": "contour",
-            "x": surface.a,
-            "y": surface.b,
-            "z": z,
-            "customdata": np.where(np.isfinite(surface.loss), surface.loss, np.nan),
-            "colorscale": colour_scale(SURFACE_SCALE),
-            "connectgaps": False,
-            "ncontours": 24,
-            "contours": {"coloring": "heatmap", "showlines": True},
-            "line": {"width": 0.6, "color": "rgba(255,255,255,0.45)"},
-            "colorbar": bar,
-            "hovertemplate": "PC1 %{x:.4g}<br>PC2 %{y:.4g}<br>loss %{customdata:.5g}<extra></extra>",
-            "name": "loss on the plane",
-            "uid": uid("trajectory", "surface"),
-        }
+        contour_trace(
+            surface,
+            lv,
+            titles=("PC1", "PC2"),
+            name="loss on the plane",
+            uid_=uid("trajectory", "surface"),
+        )
     )
     custom = np.stack([track.steps, track.loss, track.off_plane], axis=1)
     hover = (

@@ -70,6 +70,36 @@ def _colourbar(levels: Levels, z: np.ndarray) -> dict[str, Any]:
     return bar
 
 
+def contour_trace(
+    surface: Surface, levels: Levels, *, titles: tuple[str, str], name: str, uid_: str
+) -> dict[str, Any]:
+    """The loss on a surface's grid as a contour trace (NaN losses stay gaps).
+
+    ``titles`` name the two axes in the hover; ``levels`` maps losses to the
+    colour scale (see :func:`~basinview.figures.levels.choose_levels`).
+    """
+    z = levels.apply(surface.loss)
+    return {
+        "type": "contour",
+        "x": surface.a,
+        "y": surface.b,
+        "z": z,
+        "customdata": np.where(np.isfinite(surface.loss), surface.loss, np.nan),
+        "colorscale": colour_scale(SURFACE_SCALE),
+        "connectgaps": False,
+        "ncontours": 24,
+        "contours": {"coloring": "heatmap", "showlines": True},
+        "line": {"width": 0.6, "color": "rgba(255,255,255,0.45)"},
+        "colorbar": _colourbar(levels, z),
+        "hovertemplate": (
+            f"{titles[0]} %{{x:.4g}}<br>{titles[1]} %{{y:.4g}}"
+            "<br>loss %{customdata:.5g}<extra></extra>"
+        ),
+        "name": name,
+        "uid": uid_,
+    }
+
+
 def slice_figure(
     surface: Surface,
     runs: Runs | None = None,
@@ -109,28 +139,11 @@ def slice_figure(
     """
     plane = surface.plane
     lv = choose_levels(surface.loss, levels)
-    z = lv.apply(surface.loss)
     fig = FigureSpec()
     fig.add_trace(
-        {
-            "type": "contour",
-            "x": surface.a,
-            "y": surface.b,
-            "z": z,
-            "customdata": np.where(np.isfinite(surface.loss), surface.loss, np.nan),
-            "colorscale": colour_scale(SURFACE_SCALE),
-            "connectgaps": False,
-            "ncontours": 24,
-            "contours": {"coloring": "heatmap", "showlines": True},
-            "line": {"width": 0.6, "color": "rgba(255,255,255,0.45)"},
-            "colorbar": _colourbar(lv, z),
-            "hovertemplate": (
-                f"{plane.axis_titles[0]} %{{x:.4g}}<br>{plane.axis_titles[1]} %{{y:.4g}}"
-                "<br>loss %{customdata:.5g}<extra></extra>"
-            ),
-            "name": "loss",
-            "uid": uid("slice", "surface"),
-        }
+        contour_trace(
+            surface, lv, titles=plane.axis_titles, name="loss", uid_=uid("slice", "surface")
+        )
     )
     bounds = (float(surface.a[0]), float(surface.a[-1]), float(surface.b[0]), float(surface.b[-1]))
     notes = []
