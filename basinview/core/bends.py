@@ -31,7 +31,7 @@ import numpy as np
 import optax
 import pandas as pd
 
-from .checks import check_int, check_resolution
+from .checks import check_int, check_resolution, check_seed
 from .errors import ParameterError
 from .planes import Plane, through_plane
 from .problem import Problem, loss_runtime_errors
@@ -226,8 +226,7 @@ def curved_path(
     lr = _check_number(learning_rate, "learning_rate", 0.0, 1e6)
     n_steps = check_int(steps, "steps", 0, 10**7)
     n_samples = check_int(samples, "samples", 1, 4096)
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2**31:
-        raise ParameterError(f"seed must be an integer from 0 to 2**31 - 1; got {seed!r}.")
+    check_seed(seed, below=2**31)
     res = check_resolution(resolution)[0]
     if init is not None:
         c0 = problem.flatten(init, what="initial control point").astype(np.float64)

@@ -57,11 +57,25 @@ def check_resolution(resolution: Any) -> tuple[int, int]:
     return int(res[0]), int(res[1])
 
 
-def check_seed(seed: Any) -> int:
-    """A non-negative integer seed (of NumPy's ``default_rng``)."""
+def check_seed(seed: Any, *, below: int | None = None) -> int:
+    """A non-negative integer seed (of NumPy's ``default_rng``), less than ``below`` if given."""
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        if below is not None:
+            raise ParameterError(
+                f"seed must be an integer from 0 to {_power(below)} - 1; got {seed!r}."
+            )
         raise ParameterError(f"seed must be a non-negative integer; got {seed!r}.")
+    if below is not None and seed >= below:
+        raise ParameterError(
+            f"seed must be an integer from 0 to {_power(below)} - 1; got {seed!r}."
+        )
     return int(seed)
+
+
+def _power(value: int) -> str:
+    """``2**31`` for 2147483648 (how the limits read in messages)."""
+    k = value.bit_length() - 1
+    return f"2**{k}" if value == 2**k else str(value)
 
 
 def finite_point(problem: Any, theta: Any) -> jax.Array:

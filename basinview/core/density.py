@@ -36,7 +36,7 @@ import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
-from .checks import check_int, finite_point
+from .checks import check_int, check_seed, finite_point
 from .errors import ParameterError
 from .problem import Problem, loss_runtime_errors
 
@@ -268,8 +268,7 @@ def hessian_density(
     n = problem.size
     n_probes = check_int(probes, "probes", 1, 4096)
     m = min(check_int(steps, "steps", 1, 100_000), n)
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2**31:
-        raise ParameterError(f"seed must be an integer from 0 to 2**31 - 1; got {seed!r}.")
+    check_seed(seed, below=2**31)
     n_grid = check_int(grid_size, "grid_size", 16, 100_000)
     if not (isinstance(gap, (int, float)) and 0 < gap < 1):
         raise ParameterError(f"gap must be a number between 0 and 1; got {gap!r}.")
