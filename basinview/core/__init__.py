@@ -34,6 +34,7 @@ from .curvature import (
     standard_errors,
 )
 from .density import SpectralDensity, hessian_density
+from .intervals import starts_for_precision, wilson_interval
 from .descent import (
     STATUSES,
     DescentConfig,
@@ -192,6 +193,8 @@ __all__ = [
     "get_rule",
     "grid_starts",
     "hessian_density",
+    "starts_for_precision",
+    "wilson_interval",
     "hessian_matrix",
     "hessian_plane",
     "hessian_spectrum",

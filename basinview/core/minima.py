@@ -41,6 +41,7 @@ import pandas as pd
 from .descent import Runs
 from .errors import MinimaWarning, NoCriticalPointError, ParameterError
 from .identities import critical_points, default_rtol, length_scale
+from .intervals import wilson_interval
 from .problem import Problem
 from .stationary import CriticalPoint, classify, refine, refine_point
 
@@ -70,7 +71,11 @@ KINDS = ("minimum", "saddle", "maximum", "degenerate")
 
 
 def outcome_rows(minima: Minima, label: np.ndarray) -> pd.DataFrame:
-    """Share of ``label`` per point, then one row per outcome label."""
+    """Share of ``label`` per point, then one row per outcome label.
+
+    ``share_low`` / ``share_high`` bound each share with a 95% Wilson interval
+    (the starts are a sample of the plane's grid or of a random draw).
+    """
     label = np.asarray(label).ravel()
     total = max(label.size, 1)
     rows = [
@@ -88,6 +93,8 @@ def outcome_rows(minima: Minima, label: np.ndarray) -> pd.DataFrame:
         )
     frame = pd.DataFrame(rows)
     frame["share"] = frame["runs"] / total
+    low, high = wilson_interval(frame["runs"].to_numpy(), label.size)
+    frame["share_low"], frame["share_high"] = low, high
     return frame
 
 
