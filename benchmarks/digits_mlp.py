@@ -28,6 +28,7 @@ a gradient step about three forward passes (common practice).
 from __future__ import annotations
 
 import argparse
+import itertools
 import json
 import time
 from pathlib import Path
@@ -53,7 +54,7 @@ def _data() -> tuple[np.ndarray, np.ndarray]:
 def _params(seed: int = 0) -> dict[str, Any]:
     rng = np.random.default_rng(seed)
     out = {}
-    for i, (m, n) in enumerate(zip(LAYERS[:-1], LAYERS[1:])):
+    for i, (m, n) in enumerate(itertools.pairwise(LAYERS)):
         out[f"w{i}"] = (rng.standard_normal((m, n)) / np.sqrt(m)).astype(np.float32)
         out[f"b{i}"] = np.zeros(n, np.float32)
     return out
@@ -72,7 +73,7 @@ def loss(params: Any, x: Any, y: Any) -> Any:
 
 
 def _forward_flops(rows: int) -> float:
-    return 2.0 * rows * sum(m * n for m, n in zip(LAYERS[:-1], LAYERS[1:]))
+    return 2.0 * rows * sum(m * n for m, n in itertools.pairwise(LAYERS))
 
 
 def _median(fn: Any, repeats: int) -> tuple[float, float, Any]:
@@ -125,7 +126,7 @@ def run(quick: bool, repeats: int, basin_steps: int) -> dict[str, Any]:
     rows = x.shape[0]
     params = _params()
     problem = Problem(loss, params, x, y)
-    flat0, unravel = ravel_pytree(jax.tree_util.tree_map(jnp.asarray, params))
+    _flat0, unravel = ravel_pytree(jax.tree_util.tree_map(jnp.asarray, params))
     xj, yj = jnp.asarray(x), jnp.asarray(y)
 
     def flat_loss(theta: Any) -> Any:
@@ -215,7 +216,7 @@ def run(quick: bool, repeats: int, basin_steps: int) -> dict[str, Any]:
         return np.asarray(hvp(jnp.asarray(v, jnp.float32)), np.float64)
 
     op = LinearOperator((problem.size, problem.size), matvec=matvec, dtype=np.float64)
-    f_e, t_e, ref = _median(lambda: eigsh(op, k=5, which="LA", tol=1e-4)[0], 1)
+    _f_e, t_e, ref = _median(lambda: eigsh(op, k=5, which="LA", tol=1e-4)[0], 1)
     eigsh_matvecs = counter["n"] // 2
     f_bv, t_bv, spec = _median(lambda: hessian_spectrum(problem, trained, k=5), 1)
     out["hessian_top5"] = {
@@ -226,7 +227,7 @@ def run(quick: bool, repeats: int, basin_steps: int) -> dict[str, Any]:
     }
 
     # --- basin map
-    f_bm, t_bm, bmap = _median(
+    f_bm, _t_bm, bmap = _median(
         lambda: basin_map(problem, plane, span=span, resolution=basin_res, learning_rate=0.5,
                           steps=basin_steps, progress=False),
         0,
