@@ -1,0 +1,470 @@
+"""Solutions grouped by connectivity: end points joined by low straight segments.
+
+Runs of Adam on a network end near, not at, critical points, so grouping by
+critical point (:func:`~basinview.core.find_minima`) cannot say which runs
+found the same solution. :func:`connect_runs` asks the loss instead: two end
+points are one solution when the loss along the straight segment between
+them stays within ``tolerance`` of the line between their end losses (the
+segment's *barrier*, :mod:`basinview.core.segments`, is at most
+``tolerance``), and a group is every end point joined by a chain of such
+segments. With declared symmetries (:mod:`basinview.core.symmetries`) each
+end point is first moved to its copy nearest the other end.
+
+The strategy is sub-quadratic: end points are taken lowest loss first, in
+blocks; each is compared with the current *representatives* of the groups
+only (one batched call per block), and one that joins none becomes a new
+representative. A second sweep compares every end point with every final
+representative (the pairs not yet measured), so an end point connected to
+two representatives joins their groups (a chain), and every group's lowest
+barrier to each other group is measured. Cost: about ``2 K G`` segments for
+``K`` end points and ``G`` representatives.
+
+What it proves: a low segment proves that its two end points are connected
+by a low path, so a group is one connected low region (modulo the declared
+symmetries). What it does not: a high straight segment does not prove that
+two groups are separated; the low path may be curved
+(:func:`~basinview.core.curved_path` looks for one), or lie through end
+points no run reached.
+
+Groups keep their names (``S1``, ``S2``, ...) and colour indices on a
+problem: representatives are kept with the problem (:func:`solution_groups`)
+and a later call compares its end points with them first.
+
+References:
+    Frankle, J., Dziugaite, G. K., Roy, D. M. & Carbin, M. (2020). Linear
+    mode connectivity and the lottery ticket hypothesis. ICML.
+
+    Garipov, T., Izmailov, P., Podoprikhin, D., Vetrov, D. & Wilson, A. G.
+    (2018). Loss surfaces, mode connectivity, and fast ensembling of DNNs.
+    NeurIPS. Draxler, F., Veschgini, K., Salmhofer, M. & Hamprecht, F. (2018).
+    Essentially no barriers in neural network energy landscape. ICML.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .errors import MinimaWarning, ParameterError
+from .intervals import wilson_interval
+from .minima import DIVERGED_LABEL, MAX_STEPS_LABEL
+from .segments import _check_samples, segment_barriers, segment_losses
+from .symmetries import Symmetries, resolve_symmetries
+
+__all__ = ["SolutionRegistry", "Solutions", "connect_runs", "group_name", "solution_groups"]
+
+
+def group_name(index: int) -> str:
+    """The name of the group registered ``index``-th: ``S1``, ``S2``, ..."""
+    return f"S{int(index) + 1}"
+
+
+class SolutionRegistry:
+    """Representatives of the solution groups found so far on one problem.
+
+    Each representative belongs to a group id; ids follow registration order
+    and give the name (:func:`group_name`) and colour index. When a later
+    call finds that two groups are connected, the later id becomes an alias
+    of the earlier one. The registry grows only and lives with the problem.
+    """
+
+    def __init__(self, size: int) -> None:
+        self.size = int(size)
+        self._points = np.zeros((0, self.size))
+        self._loss: list[float] = []
+        self._owner: list[int] = []
+        self._parent: list[int] = []
+
+    def __len__(self) -> int:
+        return len(self._parent)
+
+    def __repr__(self) -> str:
+        live = sorted({self.find(i) for i in range(len(self))})
+        return f"SolutionRegistry({len(live)} groups, {len(self._owner)} representatives)"
+
+    @property
+    def points(self) -> np.ndarray:
+        return self._points.copy()
+
+    @property
+    def owners(self) -> list[int]:
+        """Group id of each representative (aliases resolved)."""
+        return [self.find(i) for i in self._owner]
+
+    def find(self, gid: int) -> int:
+        while self._parent[gid] != gid:
+            gid = self._parent[gid]
+        return gid
+
+    def new_group(self) -> int:
+        self._parent.append(len(self._parent))
+        return len(self._parent) - 1
+
+    def add(self, gid: int, point: np.ndarray, loss: float) -> None:
+        self._points = np.vstack([self._points, np.asarray(point, np.float64)[None]])
+        self._loss.append(float(loss))
+        self._owner.append(int(gid))
+
+    def merge(self, ids: list[int]) -> int:
+        roots = sorted({self.find(i) for i in ids})
+        for r in roots[1:]:
+            self._parent[r] = roots[0]
+        return roots[0]
+
+
+def solution_groups(problem: Any) -> SolutionRegistry:
+    """The registry of solution groups of ``problem`` (created on first use, kept with it)."""
+    return problem.cached(("solution_groups",), lambda: SolutionRegistry(problem.size))
+
+
+@dataclass(frozen=True, eq=False)
+class Solutions:
+    """End points grouped by connectivity (see :func:`connect_runs`).
+
+    Attributes:
+        label: ``(R,)`` per run, its group's row, or ``-1`` (diverged or not
+            finite) or ``-2`` (max_steps, when unconverged runs were left out).
+        names: ``(G,)`` group names (``S1``, ...), stable on the problem.
+        colour_index: ``(G,)`` colour index of each group.
+        count, share, share_low, share_high: ``(G,)`` runs per group, their
+            share of all runs and its 95% Wilson interval.
+        loss_min, loss_median, loss_max: ``(G,)`` end losses of the members.
+        barrier_inside: ``(G,)`` largest barrier of a member to the
+            representative it joined (at most ``tolerance``).
+        barrier: ``(G, G)`` lowest barrier measured between two groups (a
+            member of one and a representative of the other); the diagonal
+            holds ``barrier_inside``.
+        copies: ``(G,)`` distinct symmetric copies among the members (1
+            without symmetries, or when all members are the same copy).
+        representatives: ``(G,)`` representatives per group (several when
+            chains joined groups).
+        best: ``(G, n)`` lowest member of each group.
+        run_barrier: ``(R,)`` each run's barrier to its representative (NaN
+            for runs left out).
+        end_loss: ``(R,)`` each run's end loss.
+        tolerance: the barrier height that counts as connected.
+        samples: points along each segment.
+        symmetries: names of the declared symmetries.
+    """
+
+    label: np.ndarray
+    names: tuple[str, ...]
+    colour_index: np.ndarray
+    count: np.ndarray
+    share: np.ndarray
+    share_low: np.ndarray
+    share_high: np.ndarray
+    loss_min: np.ndarray
+    loss_median: np.ndarray
+    loss_max: np.ndarray
+    barrier_inside: np.ndarray
+    barrier: np.ndarray
+    copies: np.ndarray
+    representatives: np.ndarray
+    best: np.ndarray
+    run_barrier: np.ndarray
+    end_loss: np.ndarray
+    tolerance: float
+    samples: int
+    symmetries: tuple[str, ...]
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    @property
+    def labels(self) -> list[str]:
+        return list(self.names)
+
+    @property
+    def table(self) -> pd.DataFrame:
+        """One row per group: runs, share with its interval, losses, barriers, copies."""
+        g = len(self)
+        off = np.where(np.eye(g, dtype=bool), np.inf, self.barrier) if g else self.barrier
+        nearest = np.argmin(off, axis=1) if g > 1 else np.zeros(g, dtype=int)
+        return pd.DataFrame(
+            {
+                "group": pd.Series(self.labels, dtype=object),
+                "runs": np.asarray(self.count, dtype=np.int64),
+                "share": self.share,
+                "share_low": self.share_low,
+                "share_high": self.share_high,
+                "loss_min": self.loss_min,
+                "loss_median": self.loss_median,
+                "loss_max": self.loss_max,
+                "barrier_inside": self.barrier_inside,
+                "nearest_group": pd.Series(
+                    [self.names[j] if g > 1 else "" for j in nearest], dtype=object
+                ),
+                "barrier_to_nearest": (
+                    off[np.arange(g), nearest] if g > 1 else np.full(g, np.nan)
+                ),
+                "copies": np.asarray(self.copies, dtype=np.int64),
+                "representatives": np.asarray(self.representatives, dtype=np.int64),
+            }
+        )
+
+    @property
+    def barrier_table(self) -> pd.DataFrame:
+        """The ``G x G`` barrier matrix with group names as index and columns."""
+        return pd.DataFrame(self.barrier, index=self.labels, columns=self.labels)
+
+    @property
+    def run_table(self) -> pd.DataFrame:
+        """One row per run: its group (or outcome), end loss and barrier to its representative."""
+        names = {DIVERGED_LABEL: "diverged", MAX_STEPS_LABEL: "max_steps"}
+        group = [self.names[k] if k >= 0 else names[int(k)] for k in self.label]
+        return pd.DataFrame(
+            {
+                "run": np.arange(self.label.size),
+                "group": pd.Series(group, dtype=object),
+                "end_loss": self.end_loss,
+                "barrier": self.run_barrier,
+            }
+        )
+
+    def to_frame(self) -> pd.DataFrame:
+        return self.table
+
+
+def _inputs(problem: Any, runs: Any, include_unconverged: bool) -> tuple[Any, ...]:
+    """End points ``(R, n)``, their losses (or None), per-run outcome codes, loss drop."""
+    n = problem.size
+    if hasattr(runs, "final") and hasattr(runs, "status"):
+        if runs.final.shape[1] != n:
+            raise ParameterError(
+                f"these runs belong to a problem with {runs.final.shape[1]} parameters; this "
+                f"problem has {n}. Pass the problem the runs were made with."
+            )
+        pts = np.asarray(runs.final, dtype=np.float64)
+        loss = np.asarray(runs.final_loss, dtype=np.float64)
+        status = np.asarray(runs.status)
+        code = np.where(status == "diverged", DIVERGED_LABEL, 0)
+        if not include_unconverged:
+            code = np.where(status == "max_steps", MAX_STEPS_LABEL, code)
+        first = np.asarray(runs.losses, dtype=np.float64)[:, 0]
+        drop = float(np.nanmedian(first) - np.nanmedian(loss)) if np.any(np.isfinite(loss)) else 0.0
+        return pts, loss, code, max(drop, 0.0) if np.isfinite(drop) else 0.0
+    try:
+        pts = np.asarray(runs, dtype=np.float64)
+    except (TypeError, ValueError):
+        pts = np.stack([problem.flatten(p, what="end point") for p in runs]).astype(np.float64)
+    if pts.ndim != 2 or pts.shape[1] != n:
+        raise ParameterError(
+            f"connect_runs takes Runs (from descend) or end points as an array (K, {n}); "
+            f"got shape {pts.shape}."
+        )
+    return pts, None, np.zeros(pts.shape[0], dtype=np.int64), 0.0
+
+
+def default_tolerance(end_loss: np.ndarray, drop: float) -> float:
+    """``0.1 * median |end loss| + 1e-3 * (median start loss - median end loss)``."""
+    fin = end_loss[np.isfinite(end_loss)]
+    return float(0.1 * (np.median(np.abs(fin)) if fin.size else 0.0) + 1e-3 * drop)
+
+
+class _Pairs:
+    """Barriers measured so far between end points (rows) and representatives (columns)."""
+
+    def __init__(self, problem: Any, syms: Symmetries | None, samples: int) -> None:
+        self.problem, self.syms, self.samples = problem, syms, samples
+        self.value: dict[tuple[int, int], float] = {}
+        self.key: dict[tuple[int, int], Any] = {}
+
+    def measure(self, pairs: list[tuple[int, int]], pts: np.ndarray, reps: list[np.ndarray]) -> None:
+        todo = [pr for pr in pairs if pr not in self.value]
+        if not todo:
+            return
+        ends = np.empty((len(todo), pts.shape[1]))
+        for i, (k, r) in enumerate(todo):
+            if self.syms is None:
+                ends[i] = pts[k]
+            else:
+                ends[i], self.key[(k, r)] = self.syms.align(pts[k], reps[r])
+        starts = np.stack([reps[r] for _, r in todo])
+        barrier, _, _ = segment_barriers(self.problem, starts, ends, samples=self.samples)
+        for pr, b in zip(todo, barrier):
+            self.value[pr] = float(b)
+
+    def row(self, k: int, nreps: int) -> np.ndarray:
+        return np.array([self.value.get((k, r), np.inf) for r in range(nreps)])
+
+
+def connect_runs(
+    problem: Any,
+    runs: Any,
+    *,
+    tolerance: float | None = None,
+    symmetries: Any = None,
+    samples: int = 17,
+    block: int = 128,
+    include_unconverged: bool = True,
+) -> Solutions:
+    """Group end points into solutions joined by low straight segments.
+
+    Args:
+        problem: the problem.
+        runs: :class:`~basinview.core.Runs` (their end points; diverged runs are
+            left out), or end points as a ``(K, n)`` array or a list of pytrees.
+        tolerance: largest barrier (loss units) that counts as connected.
+            Default: ``0.1 * median |end loss| + 1e-3 * (median start loss -
+            median end loss)`` (the second term only for Runs).
+        symmetries: declarations from :mod:`basinview.core.symmetries`; end
+            points are aligned to each representative before the segment.
+        samples: points along each segment (``t = 0`` and ``1`` included).
+        block: end points compared with the representatives per batched call.
+        include_unconverged: also group runs that spent their step budget.
+
+    Warns:
+        MinimaWarning: when no two end points are connected (every group has
+            one member): the tolerance may be too tight, or the solutions are
+            joined only by curved paths or through symmetries not declared.
+
+    References:
+        Frankle et al. (2020); Garipov et al. (2018); Draxler et al. (2018);
+        Ainsworth, Hayase & Srinivasa (2023) for the alignment.
+    """
+    samples = _check_samples(samples)
+    if isinstance(block, bool) or not isinstance(block, (int, np.integer)) or block < 1:
+        raise ParameterError(f"block must be a whole number >= 1; got {block!r}.")
+    pts, loss, code, drop = _inputs(problem, runs, include_unconverged)
+    syms = resolve_symmetries(problem, symmetries)
+    if loss is None:
+        loss = segment_losses(problem, pts, pts, samples=3)[:, 0] if len(pts) else np.zeros(0)
+    finite = np.all(np.isfinite(pts), axis=1) & np.isfinite(loss)
+    code = np.where((code == 0) & ~finite, DIVERGED_LABEL, code)
+    cand = np.flatnonzero(code == 0)
+    cand = cand[np.argsort(loss[cand], kind="stable")]
+    if tolerance is None:
+        tolerance = default_tolerance(loss[cand], drop)
+        if not tolerance > 0:
+            raise ParameterError(
+                "connect_runs: the end losses are all zero, so no default tolerance follows "
+                "from them; pass tolerance= (the largest barrier, in loss units, that counts "
+                "as connected)."
+            )
+    elif not (isinstance(tolerance, (int, float, np.floating)) and tolerance >= 0):
+        raise ParameterError(f"tolerance must be a number >= 0 (loss units); got {tolerance!r}.")
+    tol = float(tolerance)
+    registry = solution_groups(problem)
+    reps = [p for p in registry.points]
+    rep_gid = list(registry.owners)
+    rep_row = [-1] * len(reps)  # the end point each representative is (-1: registered earlier)
+    pairs = _Pairs(problem, syms, samples)
+    # 1. representatives: each block against the current ones; the rest lead new groups
+    for lo in range(0, cand.size, int(block)):
+        part = [int(k) for k in cand[lo : lo + int(block)]]
+        pairs.measure([(k, r) for k in part for r in range(len(reps))], pts, reps)
+        left = [k for k in part if not np.any(pairs.row(k, len(reps)) <= tol)]
+        while left:
+            lead, left = left[0], left[1:]
+            reps.append(pts[lead])
+            rep_gid.append(-1)
+            rep_row.append(lead)
+            r = len(reps) - 1
+            pairs.value[(lead, r)] = 0.0
+            pairs.measure([(k, r) for k in left], pts, reps)
+            left = [k for k in left if pairs.value[(k, r)] > tol]
+    # 2. every end point against every representative: chains and cross-group barriers
+    nreps = len(reps)
+    pairs.measure([(int(k), r) for k in cand for r in range(nreps)], pts, reps)
+    rows = np.array([pairs.row(int(k), nreps) for k in cand]).reshape(cand.size, nreps)
+    parent = list(range(nreps))
+
+    def find(r: int) -> int:
+        while parent[r] != r:
+            parent[r] = parent[parent[r]]
+            r = parent[r]
+        return r
+
+    first_rep: dict[int, int] = {}
+    for r, gid in enumerate(rep_gid):  # groups already known to be one stay one
+        if gid >= 0:
+            a, b = find(first_rep.setdefault(gid, r)), find(r)
+            parent[max(a, b)] = min(a, b)
+    for i in range(cand.size):
+        hit = np.flatnonzero(rows[i] <= tol)
+        for r in hit[1:]:
+            a, b = find(int(hit[0])), find(int(r))
+            if a != b:
+                parent[max(a, b)] = min(a, b)
+    nearest = np.argmin(rows, axis=1) if nreps else np.zeros(0, dtype=int)
+    comp_of_cand = np.array([find(int(r)) for r in nearest], dtype=np.int64)
+    comps = sorted(set(comp_of_cand.tolist()), key=lambda c: loss[cand[comp_of_cand == c][0]])
+    # identities: a component keeps the earliest registered id among its representatives
+    gid_of: dict[int, int] = {}
+    for c in comps:
+        members = [r for r in range(nreps) if find(r) == c]
+        known = [rep_gid[r] for r in members if rep_gid[r] >= 0]
+        gid = registry.merge(known) if known else registry.new_group()
+        gid_of[c] = gid
+        for r in members:
+            if rep_gid[r] < 0:
+                registry.add(gid, reps[r], loss[rep_row[r]])
+    g = len(comps)
+    index = {c: j for j, c in enumerate(comps)}
+    label = np.where(code != 0, code, 0).astype(np.int64)
+    label[cand] = [index[c] for c in comp_of_cand]
+    run_barrier = np.full(label.size, np.nan)
+    run_barrier[cand] = rows[np.arange(cand.size), nearest] if cand.size else []
+    rep_comp = np.array([index.get(find(r), -1) for r in range(nreps)], dtype=np.int64)
+    barrier = np.full((g, g), np.inf)
+    if g and cand.size:
+        colmin = np.stack(
+            [
+                rows[:, rep_comp == b].min(axis=1) if np.any(rep_comp == b) else np.full(cand.size, np.inf)
+                for b in range(g)
+            ],
+            axis=1,
+        )
+        np.minimum.at(barrier, label[cand], colmin)
+        barrier = np.minimum(barrier, barrier.T)
+    count = np.array([np.sum(label == j) for j in range(g)], dtype=np.int64)
+    total = max(label.size, 1)
+    low, high = wilson_interval(count, label.size)
+    inside = np.array([np.nanmax(run_barrier[label == j]) for j in range(g)])
+    barrier[np.arange(g), np.arange(g)] = inside
+    copies = np.ones(g, dtype=np.int64)
+    if syms is not None:
+        for j, c in enumerate(comps):
+            principal = min(r for r in range(nreps) if find(r) == c)
+            keys = {syms.align(pts[k], reps[principal])[1] for k in cand[comp_of_cand == c]}
+            copies[j] = len(keys)
+    best = np.array([pts[cand[comp_of_cand == c][0]] for c in comps]).reshape(g, problem.size)
+    member_loss = [loss[label == j] for j in range(g)]
+    ids = np.array([gid_of[c] for c in comps], dtype=np.int64)
+    if cand.size > 1 and g == cand.size:
+        warnings.warn(
+            f"connect_runs: none of the {cand.size} end points is connected to another "
+            f"within tolerance {tol:.3g}, so every group has one member. Loosen tolerance=, "
+            "declare the model's symmetries (symmetries=...), or look for curved paths "
+            "(curved_path); a high straight segment does not prove that two runs found "
+            "different solutions.",
+            MinimaWarning,
+            stacklevel=2,
+        )
+    return Solutions(
+        label=label,
+        names=tuple(group_name(i) for i in ids),
+        colour_index=ids,
+        count=count,
+        share=count / total,
+        share_low=np.asarray(low, dtype=np.float64).reshape(g),
+        share_high=np.asarray(high, dtype=np.float64).reshape(g),
+        loss_min=np.array([v.min() for v in member_loss]),
+        loss_median=np.array([np.median(v) for v in member_loss]),
+        loss_max=np.array([v.max() for v in member_loss]),
+        barrier_inside=inside,
+        barrier=barrier,
+        copies=copies,
+        representatives=np.array([np.sum(rep_comp == j) for j in range(g)], dtype=np.int64),
+        best=best,
+        run_barrier=run_barrier,
+        end_loss=loss,
+        tolerance=tol,
+        samples=samples,
+        symmetries=() if syms is None else syms.names,
+    )
