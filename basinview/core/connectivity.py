@@ -199,9 +199,7 @@ class Solutions:
                 "nearest_group": pd.Series(
                     [self.names[j] if g > 1 else "" for j in nearest], dtype=object
                 ),
-                "barrier_to_nearest": (
-                    off[np.arange(g), nearest] if g > 1 else np.full(g, np.nan)
-                ),
+                "barrier_to_nearest": (off[np.arange(g), nearest] if g > 1 else np.full(g, np.nan)),
                 "copies": np.asarray(self.copies, dtype=np.int64),
                 "representatives": np.asarray(self.representatives, dtype=np.int64),
             }
@@ -274,7 +272,9 @@ class _Pairs:
         self.value: dict[tuple[int, int], float] = {}
         self.key: dict[tuple[int, int], Any] = {}
 
-    def measure(self, pairs: list[tuple[int, int]], pts: np.ndarray, reps: list[np.ndarray]) -> None:
+    def measure(
+        self, pairs: list[tuple[int, int]], pts: np.ndarray, reps: list[np.ndarray]
+    ) -> None:
         todo = [pr for pr in pairs if pr not in self.value]
         if not todo:
             return
@@ -415,7 +415,9 @@ def connect_runs(
     if g and cand.size:
         colmin = np.stack(
             [
-                rows[:, rep_comp == b].min(axis=1) if np.any(rep_comp == b) else np.full(cand.size, np.inf)
+                rows[:, rep_comp == b].min(axis=1)
+                if np.any(rep_comp == b)
+                else np.full(cand.size, np.inf)
                 for b in range(g)
             ],
             axis=1,

@@ -58,8 +58,10 @@ def _segment_fn(problem: Any, pairs: int, samples: int, batch: int) -> Any:
 
 
 def _check_samples(samples: Any) -> int:
-    if isinstance(samples, bool) or not isinstance(samples, (int, np.integer)) or not (
-        3 <= samples <= 1025
+    if (
+        isinstance(samples, bool)
+        or not isinstance(samples, (int, np.integer))
+        or not (3 <= samples <= 1025)
     ):
         raise ParameterError(
             f"samples (points along each segment) must be a whole number from 3 to 1025; "
@@ -90,7 +92,7 @@ def segment_losses(problem: Any, starts: Any, ends: Any, *, samples: int = 17) -
     out = np.empty((m, s), dtype=np.float64)
     if not m:
         return out
-    batch = max(1, 2 ** int(math.floor(math.log2(max(chunk_size_for(problem) / s, 1.0)))))
+    batch = max(1, 2 ** math.floor(math.log2(max(chunk_size_for(problem) / s, 1.0))))
     t = jnp.asarray(np.linspace(0.0, 1.0, s), dtype=problem.dtype)
     data = problem.data
     pending: list[tuple[int, int, Any]] = []

@@ -157,7 +157,9 @@ def _coords(problem: Any, ref: Any) -> np.ndarray:
         hit = [
             np.arange(leaf.start, leaf.stop)
             for leaf in fl.leaves
-            if leaf.name == ref or leaf.name.startswith(ref + ".") or leaf.name.startswith(ref + "[")
+            if leaf.name == ref
+            or leaf.name.startswith(ref + ".")
+            or leaf.name.startswith(ref + "[")
         ]
         if hit:
             return np.concatenate(hit)
@@ -180,7 +182,9 @@ def _unit_table(problem: Any, tensors: Mapping[str, int]) -> np.ndarray:
                 f"hidden units: no leaf called {name!r}; leaves of this problem: {sorted(leaves)}."
             )
         leaf = leaves[name]
-        if not isinstance(axis, (int, np.integer)) or not -len(leaf.shape) <= axis < len(leaf.shape):
+        if not isinstance(axis, (int, np.integer)) or not -len(leaf.shape) <= axis < len(
+            leaf.shape
+        ):
             raise ParameterError(
                 f"hidden units: axis {axis!r} is not an axis of {name!r} (shape {leaf.shape})."
             )
@@ -370,6 +374,4 @@ def resolve_symmetries(problem: Any, symmetries: Any) -> Symmetries | None:
     if not items:
         return None
     _check_disjoint(items)
-    return Symmetries(
-        names=tuple(s.name for s in specs), size=problem.size, items=tuple(items)
-    )
+    return Symmetries(names=tuple(s.name for s in specs), size=problem.size, items=tuple(items))
