@@ -1,12 +1,13 @@
 """The loss along many straight segments at once, and the barrier on each.
 
-One compiled call evaluates the loss at ``samples`` points of each of up to
-:data:`MAX_PAIRS` segments: ``jax.vmap`` over the samples of one segment,
+One compiled call evaluates the loss at ``samples`` points of each of a
+fixed number of segments: ``jax.vmap`` over the samples of one segment,
 ``jax.lax.map`` over segments in batches sized by the cost model, so memory
-is bounded by about one surface chunk of loss evaluations at a time. The
-number of segments per call is padded to a bucket size (``2^k``, ``3 * 2^k``,
-at least 16), so calls with other numbers of segments or other end points
-reuse the compiled program.
+is bounded by about one surface chunk of loss evaluations at a time. Calls
+have one of two sizes per problem and ``samples``: :data:`SMALL_CALL`
+segments, or ``64`` batches (between 256 and :data:`MAX_PAIRS` segments);
+requests are padded and split to these, so calls with other numbers of
+segments or other end points reuse the two compiled programs.
 
 The barrier of a segment from ``p`` to ``q`` is the largest excess of the
 loss over the straight line between the end losses,
@@ -33,13 +34,15 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from .cost_model import bucket, chunk_size_for
+from .cost_model import chunk_size_for
 from .errors import ParameterError
 
-__all__ = ["MAX_PAIRS", "segment_barriers", "segment_losses"]
+__all__ = ["MAX_PAIRS", "SMALL_CALL", "segment_barriers", "segment_losses"]
 
-#: Most segments one compiled call evaluates (a bucket size).
+#: Most segments one compiled call evaluates.
 MAX_PAIRS = 2048
+#: Segments in a call for small requests.
+SMALL_CALL = 16
 
 
 def _segment_fn(problem: Any, pairs: int, samples: int, batch: int) -> Any:
@@ -95,10 +98,12 @@ def segment_losses(problem: Any, starts: Any, ends: Any, *, samples: int = 17) -
     batch = max(1, 2 ** math.floor(math.log2(max(chunk_size_for(problem) / s, 1.0))))
     t = jnp.asarray(np.linspace(0.0, 1.0, s), dtype=problem.dtype)
     data = problem.data
+    call = int(min(max(64 * batch, 256), MAX_PAIRS))
+    step = SMALL_CALL if m <= SMALL_CALL else call
     pending: list[tuple[int, int, Any]] = []
-    for lo in range(0, m, MAX_PAIRS):
-        hi = min(lo + MAX_PAIRS, m)
-        size = min(bucket(hi - lo, minimum=16), MAX_PAIRS)
+    for lo in range(0, m, step):
+        hi = min(lo + step, m)
+        size = step
         pp = np.empty((size, n), dtype=problem.dtype)
         qq = np.empty((size, n), dtype=problem.dtype)
         pp[: hi - lo], qq[: hi - lo] = p[lo:hi], q[lo:hi]
