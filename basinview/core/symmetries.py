@@ -68,7 +68,7 @@ __all__ = [
     "sign_flip",
 ]
 
-_KINDS = ("periodic", "exchangeable", "sign_flip", "hidden_units")
+_KINDS = ("periodic", "exchangeable", "sign_flip", "hidden_units", "signed_units")
 
 
 @dataclass(frozen=True)
@@ -127,20 +127,23 @@ def sign_flip(groups: Any) -> SymmetrySpec:
     return SymmetrySpec("sign_flip", dict(groups) if isinstance(groups, Mapping) else groups)
 
 
-def hidden_units(tensors: Mapping[str, int]) -> SymmetrySpec:
+def hidden_units(tensors: Mapping[str, int], *, odd: bool = False) -> SymmetrySpec:
     """The hidden units of a dense layer, which may be permuted.
 
     Args:
         tensors: every leaf that carries the layer's unit index, with the
             axis of that index: incoming weights, bias and outgoing weights,
             e.g. ``{"w1": 1, "b1": 0, "w2": 0}``.
+        odd: the activation is odd (tanh, sin), so each unit may also change
+            sign as a whole; matching then pairs units by the absolute inner
+            product and flips the ones that match with a negative sign.
     """
     if not isinstance(tensors, Mapping) or not tensors:
         raise ParameterError(
             "hidden_units takes a mapping {leaf name: unit axis}, e.g. "
             f"{{'w1': 1, 'b1': 0, 'w2': 0}}; got {tensors!r}."
         )
-    return SymmetrySpec("hidden_units", dict(tensors))
+    return SymmetrySpec("signed_units" if odd else "hidden_units", dict(tensors))
 
 
 # ----------------------------------------------------------------- resolving
@@ -208,6 +211,11 @@ def _blocks(problem: Any, blocks: Sequence[Any]) -> np.ndarray:
     return np.stack(rows)
 
 
+def _signs(signs: np.ndarray) -> tuple[int, ...]:
+    """Sign part of a unit copy key (empty when no unit is flipped)."""
+    return tuple(int(v) for v in signs) if np.any(np.asarray(signs) < 0) else ()
+
+
 @dataclass(frozen=True, eq=False)
 class _Resolved:
     kind: str
@@ -259,9 +267,13 @@ class Symmetries:
                 keys.append(tuple(int(v) for v in s))
             else:
                 vals = y[r.table]
+                signs = np.ones(vals.shape[0])
+                if r.kind == "signed_units":
+                    signs = np.where(vals[:, 0] < 0, -1.0, 1.0)
+                    vals = vals * signs[:, None]
                 order = np.lexsort(vals.T[::-1])
                 y[r.table] = vals[order]
-                keys.append(tuple(int(v) for v in order))
+                keys.append(tuple(int(v) for v in order) + _signs(signs[order]))
         return y, tuple(keys)
 
     def align(self, x: Any, reference: Any) -> tuple[np.ndarray, tuple[Any, ...]]:
@@ -293,15 +305,28 @@ class Symmetries:
                     changed |= bool(np.any(s < 0))
                 else:
                     vals = y[r.table]
-                    _, cols = linear_sum_assignment(ref[r.table] @ vals.T, maximize=True)
-                    y[r.table] = vals[cols]
-                    base = np.arange(len(cols)) if state[i] is None else state[i]
-                    state[i] = base[cols]
-                    changed |= bool(np.any(cols != np.arange(len(cols))))
+                    score = ref[r.table] @ vals.T
+                    signed = r.kind == "signed_units"
+                    _, cols = linear_sum_assignment(
+                        np.abs(score) if signed else score, maximize=True
+                    )
+                    rows = np.arange(len(cols))
+                    s = np.where(score[rows, cols] < 0, -1.0, 1.0) if signed else np.ones(len(cols))
+                    y[r.table] = vals[cols] * s[:, None]
+                    old = (rows, np.ones(len(cols))) if state[i] is None else state[i]
+                    state[i] = (old[0][cols], old[1][cols] * s)
+                    changed |= bool(np.any(cols != rows) or np.any(s < 0))
             if not changed:
                 break
-        keys = tuple(() if s is None else tuple(int(v) for v in np.asarray(s)) for s in state)
-        return y, keys
+        keys = []
+        for s in state:
+            if s is None:
+                keys.append(())
+            elif isinstance(s, tuple):  # (order, signs) of units
+                keys.append(tuple(int(v) for v in s[0]) + _signs(s[1]))
+            else:
+                keys.append(tuple(int(v) for v in np.asarray(s)))
+        return y, tuple(keys)
 
     def identity_key(self, x: Any) -> tuple[Any, ...]:
         """The copy key of ``x`` aligned to itself (what "no transformation" reads as)."""
@@ -326,6 +351,8 @@ class Symmetries:
                     y[r.table] *= rng.choice([-1.0, 1.0], r.table.shape[0])[:, None]
                 else:
                     y[r.table] = y[r.table][rng.permutation(r.table.shape[0])]
+                    if r.kind == "signed_units":
+                        y[r.table] *= rng.choice([-1.0, 1.0], r.table.shape[0])[:, None]
             f = float(problem.value(y.astype(problem.dtype)))
             worst = max(worst, abs(f - f0) / max(abs(f0), 1e-300))
         return worst
@@ -355,8 +382,8 @@ def resolve_symmetries(problem: Any, symmetries: Any) -> Symmetries | None:
             items.append(_Resolved("periodic", _coords(problem, spec.parts), spec.period or 0.0))
         elif spec.kind == "exchangeable":
             items.append(_Resolved("exchangeable", _blocks(problem, spec.parts)))
-        elif spec.kind == "hidden_units":
-            items.append(_Resolved("hidden_units", _unit_table(problem, spec.parts)))
+        elif spec.kind in ("hidden_units", "signed_units"):
+            items.append(_Resolved(spec.kind, _unit_table(problem, spec.parts)))
         elif isinstance(spec.parts, Mapping):
             items.append(_Resolved("sign_flip", _unit_table(problem, spec.parts)))
         else:
