@@ -149,7 +149,7 @@ def test_permuted_training_is_the_same_solution_to_float_tolerance(mlp):
     # Source: the model's formula: permuting hidden units (columns of w1, entries
     # of b1, rows of w2) leaves the output unchanged, and descent from permuted
     # starts stays permuted (every update is coordinate-wise or equivariant).
-    prob, runs, table, perm = mlp
+    prob, runs, _, perm = mlp
     syms = resolve_symmetries(prob, [hidden_units(UNITS)])
     assert syms.check(prob, runs.final[0]) < 1e-5
     e0, e1 = np.asarray(runs.final[0], np.float64), np.asarray(runs.final[1], np.float64)
