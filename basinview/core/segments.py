@@ -4,10 +4,10 @@ One compiled call evaluates the loss at ``samples`` points of each of a
 fixed number of segments: ``jax.vmap`` over the samples of one segment,
 ``jax.lax.map`` over segments in batches sized by the cost model, so memory
 is bounded by about one surface chunk of loss evaluations at a time. Calls
-have one of two sizes per problem and ``samples``: :data:`SMALL_CALL`
-segments, or ``64`` batches (between 256 and :data:`MAX_PAIRS` segments);
-requests are padded and split to these, so calls with other numbers of
-segments or other end points reuse the two compiled programs.
+have a few sizes per problem and ``samples``: :data:`SMALL_CALL` segments
+times a power of 4, up to 64 batches (between 256 and :data:`MAX_PAIRS`
+segments); requests are padded and split to these, so calls with other
+numbers of segments or other end points reuse at most five compiled programs.
 
 The barrier of a segment from ``p`` to ``q`` is the largest excess of the
 loss over the straight line between the end losses,
@@ -99,11 +99,12 @@ def segment_losses(problem: Any, starts: Any, ends: Any, *, samples: int = 17) -
     t = jnp.asarray(np.linspace(0.0, 1.0, s), dtype=problem.dtype)
     data = problem.data
     call = int(min(max(64 * batch, 256), MAX_PAIRS))
-    step = SMALL_CALL if m <= SMALL_CALL else call
     pending: list[tuple[int, int, Any]] = []
-    for lo in range(0, m, step):
-        hi = min(lo + step, m)
-        size = step
+    for lo in range(0, m, call):
+        hi = min(lo + call, m)
+        size = SMALL_CALL
+        while size < hi - lo:
+            size = min(size * 4, call)
         pp = np.empty((size, n), dtype=problem.dtype)
         qq = np.empty((size, n), dtype=problem.dtype)
         pp[: hi - lo], qq[: hi - lo] = p[lo:hi], q[lo:hi]
