@@ -323,6 +323,15 @@ def connect_runs(
             one member): the tolerance may be too tight, or the solutions are
             joined only by curved paths or through symmetries not declared.
 
+    Examples:
+        >>> import jax.numpy as jnp
+        >>> from basinview.core import Problem
+        >>> prob = Problem(lambda p: (p[0] ** 2 - 1) ** 2 + p[1] ** 2, jnp.zeros(2))
+        >>> ends = [[-1.0, 0.0], [-0.99, 0.01], [1.0, 0.0]]
+        >>> sol = connect_runs(prob, ends, tolerance=0.05)
+        >>> sol.names, sol.label.tolist(), round(float(sol.barrier[0, 1]), 2)
+        (('S1', 'S2'), [0, 0, 1], 1.0)
+
     References:
         Frankle et al. (2020); Garipov et al. (2018); Draxler et al. (2018);
         Ainsworth, Hayase & Srinivasa (2023) for the alignment.

@@ -284,7 +284,19 @@ class Symmetries:
         units: the permutation maximising the summed inner products of matched
         rows (weight matching), by linear assignment; declarations are
         revisited ``sweeps`` times, since matching one layer changes the
-        best match of the next.
+        best match of the next. With ``hidden_units(..., odd=True)`` units
+        are matched by the absolute inner product and flipped where it is
+        negative.
+
+        Examples:
+            >>> import jax.numpy as jnp
+            >>> from basinview.core import Problem
+            >>> prob = Problem(lambda p: jnp.sin(p["phase"]) ** 2 + p["a"] ** 2,
+            ...                {"a": 0.0, "phase": 0.0})
+            >>> syms = resolve_symmetries(prob, periodic("phase", 2 * np.pi))
+            >>> y, key = syms.align([1.0, 0.1 + 2 * np.pi], [1.0, 0.0])
+            >>> np.round(y, 6).tolist(), key
+            ([1.0, 0.1], ((-1,),))
         """
         y = np.array(x, dtype=np.float64).reshape(self.size)
         ref = np.asarray(reference, dtype=np.float64).reshape(self.size)
