@@ -88,9 +88,11 @@ def _inputs(problem: Any, runs: Any, include_unconverged: bool) -> tuple[Any, ..
 
 
 def default_tolerance(end_loss: np.ndarray, drop: float) -> float:
-    """``0.1 * median |end loss| + 1e-3 * (median start loss - median end loss)``."""
+    """``0.1 * median |end loss| + 0.02 * (median start loss - median end loss)``."""
     fin = end_loss[np.isfinite(end_loss)]
-    return float(0.1 * (np.median(np.abs(fin)) if fin.size else 0.0) + 1e-3 * drop)
+    # 2% of the loss gained by training, after the 2% error barrier under which
+    # Frankle et al. (2020) call two networks linearly connected (from memory)
+    return float(0.1 * (np.median(np.abs(fin)) if fin.size else 0.0) + 0.02 * drop)
 
 
 class _Pairs:
@@ -139,8 +141,9 @@ def connect_runs(
         runs: :class:`~basinview.core.Runs` (their end points; diverged runs are
             left out), or end points as a ``(K, n)`` array or a list of pytrees.
         tolerance: largest barrier (loss units) that counts as connected.
-            Default: ``0.1 * median |end loss| + 1e-3 * (median start loss -
-            median end loss)`` (the second term only for Runs).
+            Default: ``0.1 * median |end loss| + 0.02 * (median start loss -
+            median end loss)`` (the second term only for Runs: a path that
+            gives back 2% of what training gained still counts as low).
         symmetries: declarations from :mod:`basinview.core.symmetries`; end
             points are aligned to each representative before the segment.
         samples: points along each segment (``t = 0`` and ``1`` included).
