@@ -35,6 +35,16 @@ from .curvature import (
 )
 from .density import SpectralDensity, hessian_density
 from .intervals import starts_for_precision, wilson_interval
+from .connectivity import Solutions, connect_runs, solution_groups
+from .segments import segment_barriers
+from .symmetries import (
+    Symmetries,
+    exchangeable,
+    hidden_units,
+    periodic,
+    resolve_symmetries,
+    sign_flip,
+)
 from .descent import (
     STATUSES,
     DescentConfig,
@@ -224,4 +234,14 @@ __all__ = [
     "upgrade_record",
     "upgrade_settings",
     "use_all_cores",
+    "Solutions",
+    "Symmetries",
+    "connect_runs",
+    "exchangeable",
+    "hidden_units",
+    "periodic",
+    "resolve_symmetries",
+    "segment_barriers",
+    "sign_flip",
+    "solution_groups",
 ]

@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -44,6 +45,7 @@ from .identities import critical_points, default_rtol, length_scale
 from .intervals import wilson_interval
 from .problem import Problem
 from .stationary import CriticalPoint, classify, refine, refine_point
+from .symmetries import resolve_symmetries
 
 __all__ = [
     "DIVERGED_LABEL",
@@ -119,6 +121,8 @@ class Minima:
             (:mod:`basinview.core.identities`); the same point has the same
             letter in every result on the problem.
         colour_index: ``(K,)`` each point's colour index in that registry.
+        copies: ``(K,)`` distinct symmetric copies among the end points of
+            each point's runs, when symmetries were declared (else None).
 
     An empty result (no run converged) has ``K = 0`` and well-formed
     arrays and tables; :meth:`lowest` then raises a clear error.
@@ -137,6 +141,7 @@ class Minima:
     param_labels: tuple[str, ...]
     names: tuple[str, ...]
     colour_index: np.ndarray
+    copies: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.points.shape[0])
@@ -161,6 +166,8 @@ class Minima:
                 "lambda_max": np.asarray(self.lambda_max, dtype=np.float64),
             }
         )
+        if self.copies is not None:
+            frame["copies"] = np.asarray(self.copies, dtype=np.int64)
         coords = pd.DataFrame(
             self.points.astype(np.float64).reshape(len(self), len(self.param_labels)),
             columns=list(self.param_labels),
@@ -215,7 +222,9 @@ def _empty_warning(runs: Runs, include_unconverged: bool, unresolved: int) -> st
             f"find_minima: refinement brought the end points of none of the {n} runs to a "
             f"stationary point ({unresolved} groups not stationary), so the result is empty. "
             "To find critical points: run more steps (descend(..., steps=...)) so the runs get "
-            "closer, raise refine_steps, or loosen grad_tol."
+            "closer, raise refine_steps, or loosen grad_tol. Runs that end near but not at "
+            "critical points (e.g. Adam on a network) are grouped by connect_runs(problem, "
+            "runs), which asks whether the loss stays low between end points."
         )
     if diverged == n:
         return (
@@ -244,6 +253,7 @@ def find_minima(
     grad_tol: float | None = None,
     refine_steps: int = 50,
     include_unconverged: bool = False,
+    symmetries: Any = None,
 ) -> Minima:
     """Group the end points of converged runs into distinct, classified stationary points.
 
@@ -270,6 +280,12 @@ def find_minima(
         include_unconverged: also use the end points of runs that ran out of
             steps (not diverged ones); each is assigned to the stationary point
             refinement reaches from it, which it may not have been heading for.
+            Runs that end near but not at critical points (Adam on a network)
+            are better grouped by :func:`~basinview.core.connect_runs`.
+        symmetries: declared symmetries (:mod:`basinview.core.symmetries`):
+            end points and refined points are compared modulo them (each is
+            moved to its copy nearest the other), registry letters are given
+            to canonical copies, and ``Minima.copies`` counts the copies merged.
 
     Warns:
         MinimaWarning: when no point is found although there were runs; the
@@ -287,6 +303,7 @@ def find_minima(
     ):
         raise ParameterError(f"refine_steps must be a whole number >= 0; got {refine_steps!r}.")
     xtol = default_rtol(problem.dtype) if xtol is None else float(xtol)
+    syms = resolve_symmetries(problem, symmetries)
     n_runs = len(runs)
     status = np.asarray(runs.status)
     assignment = np.where(status == "diverged", DIVERGED_LABEL, MAX_STEPS_LABEL).astype(np.int64)
@@ -304,7 +321,12 @@ def find_minima(
     pending = conv[np.argsort(final_loss[conv], kind="stable")]
     while pending.size:
         lead = int(pending[0])
-        near = _near(ends[pending], ends[lead], xtol, scale) & _loss_near(
+        seen = (
+            ends[pending]
+            if syms is None
+            else np.stack([syms.align(ends[r], ends[lead])[0] for r in pending])
+        )
+        near = _near(seen, ends[lead], xtol, scale) & _loss_near(
             final_loss[pending], final_loss[lead], ftol, fscale
         )
         near[0] = True
@@ -322,9 +344,10 @@ def find_minima(
             continue
         cp = classify(problem, ref.point)
         for k, (other, _) in enumerate(refined):
-            same = _near(
-                other.point[None].astype(np.float64), cp.point.astype(np.float64), xtol, scale
-            )
+            here = cp.point.astype(np.float64)
+            if syms is not None:
+                here = syms.align(here, other.point)[0]
+            same = _near(other.point[None].astype(np.float64), here, xtol, scale)
             if same[0] and _loss_near(np.array([other.loss]), cp.loss, ftol, fscale)[0]:
                 merged_index.append(k)
                 break
@@ -345,7 +368,14 @@ def find_minima(
     points = np.array([cp.point for cp, _ in pts]).reshape(len(pts), n)
     loss = np.array([cp.loss for cp, _ in pts], dtype=np.float64)
     kind = np.array([cp.kind for cp, _ in pts], dtype=object)
-    ids = critical_points(problem).identify(points, loss, kind)
+    named = points if syms is None else np.array([syms.canonical(p)[0] for p in points])
+    ids = critical_points(problem).identify(named.reshape(len(pts), n), loss, kind)
+    copies = None
+    if syms is not None:
+        copies = np.zeros(len(pts), dtype=np.int64)
+        for i in range(len(pts)):
+            members = np.flatnonzero(assignment == i)
+            copies[i] = len({syms.align(ends[r], points[i])[1] for r in members})
     count = np.array([(assignment == i).sum() for i in range(len(pts))], dtype=np.int64)
     if not len(pts) and n_runs:
         unresolved = int(np.sum(np.asarray(merged_index) == NOT_STATIONARY_LABEL))
@@ -366,4 +396,5 @@ def find_minima(
         param_labels=problem.labels,
         names=tuple(critical_points(problem).letters[i] for i in ids),
         colour_index=ids,
+        copies=copies,
     )

@@ -12,6 +12,7 @@ and descent paths leave the plane (hover shows how far).
 
 from .basins import basin_figure, profile_figure
 from .curves import REGIME_COLOURS, loss_curves_figure, step_size_figure
+from .groups import solutions_figure
 from .instruments import curved_path_figure, density_figure, trajectory_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
@@ -35,6 +36,7 @@ __all__ = [
     "relief_figure",
     "slice_caution",
     "slice_figure",
+    "solutions_figure",
     "step_size_figure",
     "trajectory_figure",
 ]
