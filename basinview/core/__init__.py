@@ -111,6 +111,8 @@ from .surface import (
 )
 from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 from .view import ViewSpec, upgrade_settings
+from .schemes import SchemeComparison, compare_schemes, top_hessian_eigenvalues
+from .starts import scheme_of, scheme_starts
 
 __all__ = [
     "ADAM",
@@ -224,4 +226,9 @@ __all__ = [
     "upgrade_record",
     "upgrade_settings",
     "use_all_cores",
+    "SchemeComparison",
+    "compare_schemes",
+    "scheme_of",
+    "scheme_starts",
+    "top_hessian_eigenvalues",
 ]
