@@ -111,7 +111,8 @@ from .surface import (
 )
 from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 from .view import ViewSpec, upgrade_settings
-from .schemes import SchemeComparison, compare_schemes, top_hessian_eigenvalues
+from .power_iteration import top_hessian_eigenvalues
+from .schemes import SchemeComparison, compare_schemes
 from .starts import scheme_of, scheme_starts
 
 __all__ = [
