@@ -29,26 +29,23 @@ def _power_program(flat_loss: Callable[..., Any]) -> Callable[..., Any]:
     grad = jax.grad(flat_loss)
 
     def one(theta: jax.Array, v0: jax.Array, iters: jax.Array, data: Any) -> jax.Array:
-        def hvp(v: jax.Array) -> jax.Array:
-            return jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
-
-        def power(v: jax.Array, shift: jax.Array) -> jax.Array:
-            def body(_: Any, v: jax.Array) -> jax.Array:
-                w = hvp(v) - shift * v
-                norm = jnp.linalg.norm(w)
-                return jnp.where(norm > 0, w / jnp.where(norm > 0, norm, 1), v)
-
-            return jax.lax.fori_loop(0, iters, body, v)
-
         start = v0 / jnp.linalg.norm(v0)
+
+        def body(i: jax.Array, carry: tuple[jax.Array, ...]) -> tuple[jax.Array, ...]:
+            v, shift, _ = carry
+            hv = jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
+            value = v @ hv  # Rayleigh quotient of H at the unit vector v
+            # After the first pass: if the dominant eigenvalue is negative (a saddle),
+            # restart on H - value * I, whose dominant eigenvalue is the top one.
+            switch = i == iters
+            shift = jnp.where(switch, jnp.minimum(value, 0), shift)
+            w = jnp.where(switch & (value < 0), start, hv - shift * v)
+            norm = jnp.linalg.norm(w)
+            v = jnp.where(norm > 0, w / jnp.where(norm > 0, norm, 1), v)
+            return v, shift, value
+
         zero = jnp.zeros((), theta.dtype)
-        v = power(start, zero)
-        dominant = v @ hvp(v)
-        # The dominant eigenvalue may be the most negative one (a saddle): then
-        # iterate on H - dominant * I, whose dominant eigenvalue is the top one.
-        shift = jnp.minimum(dominant, zero)
-        v = power(jnp.where(dominant < 0, start, v), shift)
-        return v @ hvp(v)
+        return jax.lax.fori_loop(0, 2 * iters + 1, body, (start, zero, zero))[2]
 
     return jax.jit(jax.vmap(one, in_axes=(0, 0, None, None)))
 

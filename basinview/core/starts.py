@@ -23,6 +23,7 @@ import jax
 import numpy as np
 
 from .checks import check_resolution, check_seed
+from .cost_model import bucket
 from .errors import BasinviewError, ParameterError
 from .planes import Plane
 from .problem import Problem, loss_name
@@ -180,11 +181,11 @@ def initializer_starts(
     seed = check_seed(seed)
     if not callable(init):
         raise ParameterError("init must be a function init(key) -> params.")
-    keys = jax.random.split(jax.random.key(seed), count)
+    keys = _split_keys(seed, count)
     rows = []
     for i in range(count):
         try:
-            params = init(keys[i])
+            params = init(jax.random.wrap_key_data(keys[i]))
         except Exception as exc:
             raise ParameterError(
                 f"the initialiser {loss_name(init)} raised {type(exc).__name__} for key {i}: "
@@ -194,6 +195,20 @@ def initializer_starts(
         rows.append(problem.flatten(params, what=f"initialiser output {i}"))
     spec = {"kind": "initializer", "name": name or loss_name(init), "count": count, "seed": seed}
     return Starts(np.stack(rows), spec)
+
+
+def _split_keys(seed: int, count: int) -> np.ndarray:
+    """The key data of ``jax.random.split(jax.random.key(seed), count)``, on the host.
+
+    With JAX's partitionable threefry (its default) the first ``count`` keys of a
+    larger split are the same keys, so the split is made at a bucket size and
+    new counts within a bucket compile nothing.
+    """
+    size = bucket(count) if jax.config.jax_threefry_partitionable else count
+    return np.asarray(jax.random.key_data(_split(jax.random.key(seed), size)))[:count]
+
+
+_split = jax.jit(jax.random.split, static_argnums=1)
 
 
 def _check_count(count: Any) -> int:
