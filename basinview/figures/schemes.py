@@ -37,6 +37,10 @@ def _check(comparison: Any) -> SchemeComparison:
     return comparison
 
 
+def _runs(n: int) -> str:
+    return "1 run" if n == 1 else f"{n} runs"
+
+
 def _solution_titles(comparison: SchemeComparison) -> dict[str, str]:
     """Axis labels of the solutions: a critical point's letter with its kind and loss."""
     titles = {s: s for s in comparison.solutions}
@@ -76,7 +80,7 @@ def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = No
                 "type": "bar",
                 "x": [titles[s] for s in rows["solution"]],
                 "y": share,
-                "name": f"{name} ({int(rows['of'].iloc[0])} runs)",
+                "name": f"{name} ({_runs(int(rows['of'].iloc[0]))})",
                 "marker": {"color": colours[name]},
                 "error_y": {
                     "type": "data",
