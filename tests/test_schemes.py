@@ -62,7 +62,7 @@ def himmel():
 
 
 def test_box_around_each_published_minimum_lands_there(himmel):
-    prob, cmp = himmel
+    _, cmp = himmel
     shares = cmp.shares
     assert cmp.schemes == tuple(HIMMELBLAU_MINIMA)
     for name, centre in HIMMELBLAU_MINIMA.items():
@@ -176,7 +176,7 @@ def test_schemes_do_not_recompile_when_seeds_or_counts_change(mlp):
         }
 
     def run(seed, count):
-        labels = lambda runs: np.where(runs.final_loss < 0.5, "low", "high")  # noqa: E731
+        labels = lambda runs: np.where(runs.final_loss < 0.5, "low", "high")
         return compare_schemes(prob, schemes(seed, count), solutions=labels,
                                learning_rate=0.05, steps=MLP_STEPS, min_runs=MLP_RUNS)  # fmt: skip
 
