@@ -381,6 +381,7 @@ def _assemble(
     precond = np.concatenate([o[4] for o in outs]) if len(outs[0]) > 4 else None
     steps = config.steps
     t1 = steps + 1
+    names = scheme_of(start_set)
     return Runs(
         rule=rule.name,
         hyper=hyper_rows,
@@ -397,5 +398,5 @@ def _assemble(
         plane=plane,
         config=config,
         preconditioner=precond,
-        scheme=None if scheme_of(start_set) is None else scheme_of(start_set)[start_index],
+        scheme=None if names is None else names[start_index],
     )

@@ -204,7 +204,8 @@ def _split_keys(seed: int, count: int) -> np.ndarray:
     larger split are the same keys, so the split is made at a bucket size and
     new counts within a bucket compile nothing.
     """
-    size = bucket(count) if jax.config.jax_threefry_partitionable else count
+    prefix_stable = bool(getattr(jax.config, "jax_threefry_partitionable", False))
+    size = bucket(count) if prefix_stable else count
     return np.asarray(jax.random.key_data(_split(jax.random.key(seed), size)))[:count]
 
 
