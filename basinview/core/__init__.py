@@ -121,6 +121,9 @@ from .surface import (
 )
 from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 from .view import ViewSpec, upgrade_settings
+from .power_iteration import top_hessian_eigenvalues
+from .schemes import SchemeComparison, compare_schemes
+from .starts import scheme_of, scheme_starts
 
 __all__ = [
     "ADAM",
@@ -244,4 +247,9 @@ __all__ = [
     "segment_barriers",
     "sign_flip",
     "solution_groups",
+    "SchemeComparison",
+    "compare_schemes",
+    "scheme_of",
+    "scheme_starts",
+    "top_hessian_eigenvalues",
 ]

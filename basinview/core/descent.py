@@ -31,7 +31,7 @@ from .planes import Plane, axes_plane, random_plane
 from .problem import Problem, loss_runtime_errors
 from .runs import STATUSES, Runs, oscillation_measures, runs_table
 from .sharding import batch_devices, replicated, split
-from .starts import Starts, as_starts
+from .starts import Starts, as_starts, scheme_of
 
 __all__ = [
     "MAX_STEPS",
@@ -164,8 +164,11 @@ def descend(
 
     Args:
         problem: the problem to minimise.
-        starts: :class:`Starts`, one parameter pytree, a list of them, or an
-            ``(S, n)`` array of flat vectors.
+        starts: :class:`Starts`, one parameter pytree, a list of them, an
+            ``(S, n)`` array of flat vectors, or named start sets
+            (``{"scheme name": starts, ...}``, see :func:`scheme_starts`): then
+            every run carries its scheme's name (``runs.scheme``, a column of
+            ``runs.table``).
         optimizer: a rule name (``"gradient_descent"``/``"gd"``,
             ``"sequential"``, ``"momentum"``, ``"nesterov"``, ``"adam"``,
             ``"rmsprop"``), an :class:`UpdateRule`, or an optax factory or
@@ -378,6 +381,7 @@ def _assemble(
     precond = np.concatenate([o[4] for o in outs]) if len(outs[0]) > 4 else None
     steps = config.steps
     t1 = steps + 1
+    names = scheme_of(start_set)
     return Runs(
         rule=rule.name,
         hyper=hyper_rows,
@@ -394,4 +398,5 @@ def _assemble(
         plane=plane,
         config=config,
         preconditioner=precond,
+        scheme=None if names is None else names[start_index],
     )

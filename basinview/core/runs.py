@@ -52,6 +52,9 @@ class Runs:
             diagonal ``P`` each run's final state divides its step by (see
             :func:`basinview.core.curvature.preconditioned_sharpness`); None
             for other rules.
+        scheme: ``(R,)`` the name of each run's initialisation scheme when
+            the starts were named sets (:func:`~basinview.core.scheme_starts`),
+            else None.
     """
 
     rule: str
@@ -69,6 +72,7 @@ class Runs:
     plane: Plane | None
     config: DescentConfig | None = None
     preconditioner: np.ndarray | None = None
+    scheme: np.ndarray | None = None
 
     def __len__(self) -> int:
         return int(self.status.shape[0])
@@ -125,7 +129,7 @@ class Runs:
 
     @property
     def table(self) -> pd.DataFrame:
-        """One row per run: start, hyper-parameters, status, steps, losses, end point."""
+        """One row per run: start (and scheme), hyper-parameters, status, steps, losses, end point."""
         return runs_table(self)
 
     def to_frame(self) -> pd.DataFrame:
@@ -163,6 +167,8 @@ def runs_table(runs: Runs, *, loss_below: float | None = None) -> pd.DataFrame:
     """
     r = len(runs)
     rows: dict[str, Any] = {"run": np.arange(r), "start": runs.start_index}
+    if runs.scheme is not None:
+        rows["scheme"] = pd.Series(runs.scheme, dtype=object)
     for name, values in runs.hyper.items():
         rows[name] = values
     rows["status"] = runs.status

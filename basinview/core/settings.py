@@ -176,6 +176,32 @@ class Settings:
             ) from None
         return cls.from_json(data, problem=problem)
 
+    @property
+    def schemes(self) -> list[dict[str, Any]]:
+        """The initialisation schemes of the starts (empty unless they were named sets).
+
+        One dict per scheme: ``name``, ``kind`` (``"explicit"``, ``"random"``,
+        ``"initializer"``...), ``count``, ``seed`` (None for explicit starts) and
+        ``initializer`` (the initialiser's qualified name, or None). They live in
+        ``starts`` (kind ``"schemes"``, see :func:`~basinview.core.scheme_starts`),
+        so settings recorded before schemes existed read as before.
+        """
+        if self.starts.get("kind") != "schemes":
+            return []
+        rows = []
+        for row in self.starts.get("schemes", []):
+            spec = row.get("starts", {})
+            rows.append(
+                {
+                    "name": row.get("name"),
+                    "kind": spec.get("kind"),
+                    "count": row.get("count"),
+                    "seed": spec.get("seed"),
+                    "initializer": spec.get("name") if spec.get("kind") == "initializer" else None,
+                }
+            )
+        return rows
+
     # ------------------------------------------------------------ checks
     def check(self, problem: Problem) -> bool:
         """Whether ``problem`` is the one these settings were recorded for.

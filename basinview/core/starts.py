@@ -8,11 +8,14 @@ Four ways to choose where runs begin, each returning :class:`Starts` (an
 * :func:`random_starts`: seeded Gaussian draws around a point;
 * :func:`initializer_starts`: draws from the user's own initialiser
   ``init(key) -> params``, so initialisation schemes can be compared.
+
+:func:`scheme_starts` joins several such sets under names (initialisation
+schemes); :func:`scheme_of` gives each start its scheme's name.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -20,6 +23,7 @@ import jax
 import numpy as np
 
 from .checks import check_resolution, check_seed
+from .cost_model import bucket
 from .errors import BasinviewError, ParameterError
 from .planes import Plane
 from .problem import Problem, loss_name
@@ -34,6 +38,8 @@ __all__ = [
     "grid_starts",
     "initializer_starts",
     "random_starts",
+    "scheme_of",
+    "scheme_starts",
     "starts_from_spec",
 ]
 
@@ -175,11 +181,11 @@ def initializer_starts(
     seed = check_seed(seed)
     if not callable(init):
         raise ParameterError("init must be a function init(key) -> params.")
-    keys = jax.random.split(jax.random.key(seed), count)
+    keys = _split_keys(seed, count)
     rows = []
     for i in range(count):
         try:
-            params = init(keys[i])
+            params = init(jax.random.wrap_key_data(keys[i]))
         except Exception as exc:
             raise ParameterError(
                 f"the initialiser {loss_name(init)} raised {type(exc).__name__} for key {i}: "
@@ -189,6 +195,21 @@ def initializer_starts(
         rows.append(problem.flatten(params, what=f"initialiser output {i}"))
     spec = {"kind": "initializer", "name": name or loss_name(init), "count": count, "seed": seed}
     return Starts(np.stack(rows), spec)
+
+
+def _split_keys(seed: int, count: int) -> np.ndarray:
+    """The key data of ``jax.random.split(jax.random.key(seed), count)``, on the host.
+
+    With JAX's partitionable threefry (its default) the first ``count`` keys of a
+    larger split are the same keys, so the split is made at a bucket size and
+    new counts within a bucket compile nothing.
+    """
+    prefix_stable = bool(getattr(jax.config, "jax_threefry_partitionable", False))
+    size = bucket(count) if prefix_stable else count
+    return np.asarray(jax.random.key_data(_split(jax.random.key(seed), size)))[:count]
+
+
+_split = jax.jit(jax.random.split, static_argnums=1)
 
 
 def _check_count(count: Any) -> int:
@@ -217,8 +238,86 @@ def combine_starts(*parts: Starts) -> Starts:
     return Starts(np.concatenate([p.points for p in parts]), spec)
 
 
+def scheme_starts(
+    problem: Problem,
+    schemes: Mapping[str, Any],
+    *,
+    count: int | None = None,
+    seed: int = 0,
+) -> Starts:
+    """One set of starts made of several named ones (initialisation schemes).
+
+    Each value of ``schemes`` is one scheme's starts: a :class:`Starts`
+    (from :func:`explicit_starts`, :func:`random_starts` or
+    :func:`initializer_starts`), an array or list of parameter pytrees
+    (explicit starts), or an initialiser ``init(key) -> params``, drawn
+    ``count`` times with ``seed`` (the same keys for every such scheme, so
+    schemes are compared on common random numbers). Every start keeps its
+    scheme's name (:func:`scheme_of`), and so does every run that
+    :func:`~basinview.core.descend` makes from it; the spec records the names,
+    counts, seeds and initialisers' qualified names.
+
+    Examples:
+        >>> import numpy as np
+        >>> from basinview.core import Problem
+        >>> prob = Problem(lambda p: p[0] ** 2 + p[1] ** 2, np.zeros(2, np.float32))
+        >>> st = scheme_starts(prob, {"origin": np.zeros((1, 2)), "wide": random_starts(prob, 2, scale=3.0)})
+        >>> scheme_of(st).tolist()
+        ['origin', 'wide', 'wide']
+    """
+    if not isinstance(schemes, Mapping) or not schemes:
+        raise ParameterError(
+            "schemes must be a non-empty mapping from a scheme's name to its starts, e.g. "
+            "{'small normal': random_starts(problem, 32, scale=0.01), 'fan-in': init}."
+        )
+    parts: list[tuple[str, Starts]] = []
+    for name, value in schemes.items():
+        if not isinstance(name, str) or not name.strip():
+            raise ParameterError(f"scheme names must be non-empty strings; got {name!r}.")
+        if isinstance(value, Starts):
+            part = as_starts(problem, value)
+        elif callable(value):
+            if count is None:
+                raise ParameterError(
+                    f"the scheme {name!r} is an initialiser; give count= (how many starts to "
+                    "draw per scheme), or pass initializer_starts(problem, init, count, seed=...)."
+                )
+            part = initializer_starts(problem, value, count, seed=seed)
+        else:
+            try:
+                part = explicit_starts(problem, value)
+            except BasinviewError as exc:
+                raise ParameterError(f"the starts of scheme {name!r}: {exc}") from None
+        parts.append((name, part))
+    spec = {
+        "kind": "schemes",
+        "schemes": [{"name": n, "count": len(p), "starts": p.spec} for n, p in parts],
+    }
+    return Starts(np.concatenate([p.points for _, p in parts]), spec)
+
+
+def scheme_of(starts: Starts) -> np.ndarray | None:
+    """Each start's scheme name (an object array), or None if ``starts`` has no schemes."""
+    if starts.spec.get("kind") != "schemes":
+        return None
+    names = [s["name"] for s in starts.spec["schemes"]]
+    counts = [int(s["count"]) for s in starts.spec["schemes"]]
+    return np.repeat(np.asarray(names, dtype=object), counts)
+
+
 def as_starts(problem: Problem, starts: Any) -> Starts:
-    """Coerce ``starts`` (Starts, array, pytree or list of pytrees) to :class:`Starts`."""
+    """Coerce ``starts`` (Starts, array, pytree, list of pytrees, or a mapping of named
+    start sets, see :func:`scheme_starts`) to :class:`Starts`."""
+    if (
+        isinstance(starts, Mapping)
+        and starts
+        and all(
+            isinstance(v, (Starts, np.ndarray, jax.Array, list, tuple)) or callable(v)
+            for v in starts.values()
+        )
+        and _not_one_start(problem, starts)
+    ):
+        return scheme_starts(problem, starts)
     if isinstance(starts, Starts):
         if starts.points.shape[1] != problem.size:
             raise ParameterError(
@@ -288,6 +387,19 @@ def _starts_from_spec(
                 f"initializers={{{spec['name']!r}: function}} to rebuild them."
             )
         return initializer_starts(problem, fn, spec["count"], seed=spec["seed"], name=spec["name"])
+    if kind == "schemes":
+        rows = spec["schemes"]
+        if not isinstance(rows, list) or not rows:
+            raise ParameterError("scheme starts need a non-empty list of schemes.")
+        return scheme_starts(
+            problem,
+            {
+                row["name"]: starts_from_spec(
+                    problem, row["starts"], plane=plane, initializers=initializers
+                )
+                for row in rows
+            },
+        )
     if kind == "combined":
         parts = spec.get("parts")
         if not isinstance(parts, list) or not parts:
@@ -299,6 +411,14 @@ def _starts_from_spec(
             )
         )
     raise ParameterError(
-        f"unknown starts kind {kind!r}; expected 'explicit', 'random', 'grid', 'initializer' "
-        "or 'combined'."
+        f"unknown starts kind {kind!r}; expected 'explicit', 'random', 'grid', 'initializer', "
+        "'combined' or 'schemes'."
     )
+
+
+def _not_one_start(problem: Problem, starts: Mapping[str, Any]) -> bool:
+    """Whether a mapping is a set of named schemes rather than one dict of parameters."""
+    try:
+        return jax.tree_util.tree_structure(dict(starts)) != problem.flattener.treedef
+    except Exception:
+        return True

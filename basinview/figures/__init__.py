@@ -17,6 +17,7 @@ from .instruments import curved_path_figure, density_figure, trajectory_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
 from .slices import relief_figure, slice_caution, slice_figure
+from .schemes import scheme_colours, scheme_shares_figure, scheme_steps_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
 
 __all__ = [
@@ -39,4 +40,7 @@ __all__ = [
     "solutions_figure",
     "step_size_figure",
     "trajectory_figure",
+    "scheme_colours",
+    "scheme_shares_figure",
+    "scheme_steps_figure",
 ]
