@@ -6,6 +6,7 @@ from typing import Any
 
 import numpy as np
 import plotly.graph_objects as go
+from scipy import ndimage
 
 from ..core.errors import ParameterError
 from ..core.minima import OUTCOMES
@@ -13,39 +14,48 @@ from ..core.surface import Profile, Surface
 from .build import FigureSpec
 from .levels import choose_levels
 from .overlays import add_critical_points
+from .paths import legend_summary, percent
 from .slices import slice_caution
-from .style import OUTCOME_STYLES, add_note, base_layout, category_colour, uid
+from .style import LEGEND_LIMIT, OUTCOME_STYLES, add_note, base_layout, category_colour, uid
+from .text import significant
 
-__all__ = ["basin_figure", "profile_figure"]
+__all__ = ["basin_centres", "basin_figure", "profile_figure"]
 
 
-def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str]]:
-    """``(code, legend name, colour)`` for every code present in ``label``.
+def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str, int]]:
+    """``(code, legend name, colour, count)`` for every code present in ``label``.
 
-    Points are named by their letters and coloured by their colour index in
-    the problem's registry, so a basin has the letter and colour its point has
-    in every other figure; outcome labels use the names of
-    :data:`basinview.core.OUTCOMES`.
+    Points come in letter order (the registry's order, whatever order the
+    result lists them in), named by their letters and coloured by their
+    colour index in the problem's registry, so a basin has the letter and
+    colour its point has in every other figure; outcome labels follow, with
+    the names of :data:`basinview.core.OUTCOMES`.
     """
     total = label.size
     cats = []
     names = list(minima.labels)
     colours = np.asarray(minima.colour_index)
-    for k in range(len(names)):
+    for k in np.argsort(colours, kind="stable"):
+        k = int(k)
         count = int(np.sum(label == k))
         if count:
             name = (
-                f"{names[k]}: {minima.kind[k]}, loss {float(minima.loss[k]):.3g} "
-                f"({100 * count / total:.0f}% of starts)"
+                f"{names[k]}: {minima.kind[k]}, loss {significant(float(minima.loss[k]), 3)} "
+                f"({percent(count / total)} of starts)"
             )
-            cats.append((k, name, category_colour(int(colours[k]))))
+            cats.append((k, name, category_colour(int(colours[k])), count))
     for code, style in OUTCOME_STYLES.items():
         count = int(np.sum(label == code))
         if count:
             cats.append(
-                (code, f"{style['legend']} ({100 * count / total:.0f}% of starts)", style["colour"])
+                (
+                    code,
+                    f"{style['legend']} ({percent(count / total)} of starts)",
+                    style["colour"],
+                    count,
+                )
             )
-    unknown = sorted(set(np.unique(label).tolist()) - {c for c, _, _ in cats})
+    unknown = sorted(set(np.unique(label).tolist()) - {c[0] for c in cats})
     if unknown:
         known = ", ".join(f"{c} ({OUTCOMES[c]})" for c in sorted(OUTCOMES, reverse=True))
         raise ParameterError(
@@ -55,10 +65,34 @@ def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str]]:
     return cats
 
 
+def basin_centres(label: np.ndarray, codes: list[int]) -> dict[int, tuple[int, int]]:
+    """For each code, the ``(row, column)`` of its cell farthest inside its basin.
+
+    The cell with the largest distance to the nearest cell of another label
+    (or the map's edge) lies inside the basin even when the basin is curved
+    or in pieces (where its centroid may not), so a letter written there
+    sits on its own colour.
+
+    Examples:
+        >>> lab = np.array([[0, 0, 0, 1], [0, 0, 0, 1], [0, 0, 0, 1]])
+        >>> basin_centres(lab, [0, 1])
+        {0: (1, 1), 1: (1, 3)}
+    """
+    out = {}
+    for code in codes:
+        mask = np.pad(label == code, 1)
+        if not mask.any():
+            continue
+        depth = ndimage.distance_transform_edt(mask)[1:-1, 1:-1]
+        out[code] = tuple(int(i) for i in np.unravel_index(np.argmax(depth), depth.shape))
+    return out
+
+
 def basin_figure(
     basin_map: Any,
     *,
     surface: Surface | None = None,
+    legend_limit: int = LEGEND_LIMIT,
     title: str | None = None,
 ) -> go.Figure:
     """Which minimum each start on the slice leads to.
@@ -67,14 +101,17 @@ def basin_figure(
     reached (its letter and colour are the point's in every figure on the
     problem); runs that diverged are grey, runs that spent their step budget
     (max_steps) dark grey and runs whose end point is not stationary slate.
-    The legend gives each basin's share of the starts.
-    Critical points found are marked with their letters (projected onto
-    the plane; hover shows how far off it they lie). With ``surface``,
-    contour lines of the loss are drawn on top.
+    Each basin's letter is written on the map at the cell farthest inside
+    it; the legend, in letter order, gives the shares of the starts for the
+    ``legend_limit`` largest basins and sums up the rest in one line.
+    Critical points found are marked (projected onto the plane; hover shows
+    how far off it they lie), with their letters when they have no basin on
+    the map. With ``surface``, contour lines of the loss are drawn on top.
 
     Args:
         basin_map: a :class:`~basinview.core.basins.BasinMap`.
         surface: optional surface on the same plane, drawn as contour lines.
+        legend_limit: the legend names at most this many basins (the largest).
         title: figure title.
     """
     label = np.asarray(basin_map.label)
@@ -88,13 +125,13 @@ def basin_figure(
     plane = basin_map.plane
     minima = basin_map.minima
     cats = _categories(label, minima)
-    index = {code: i for i, (code, _, _) in enumerate(cats)}
+    index = {c[0]: i for i, c in enumerate(cats)}
     z = np.vectorize(index.get)(label).astype(np.float64)
     n = len(cats)
     scale = []
-    for i, (_, _, colour) in enumerate(cats):
-        scale += [[i / n, colour], [(i + 1) / n, colour]]
-    names = [name.split(" (")[0] for _, name, _ in cats]
+    for i, c in enumerate(cats):
+        scale += [[i / n, c[2]], [(i + 1) / n, c[2]]]
+    names = [c[1].split(" (")[0] for c in cats]
     hover = np.array(names, dtype=object)[z.astype(int)]
     fig = FigureSpec()
     fig.add_trace(
@@ -110,14 +147,16 @@ def basin_figure(
             "opacity": 0.85,
             "customdata": hover,
             "hovertemplate": (
-                f"start {plane.axis_titles[0]} %{{x:.4g}}, {plane.axis_titles[1]} %{{y:.4g}}"
+                f"start {plane.axis_titles[0]} %{{x:.4~g}}, {plane.axis_titles[1]} %{{y:.4~g}}"
                 "<br>ends: %{customdata}<extra></extra>"
             ),
             "name": "basins",
             "uid": uid("basins", "map"),
         }
     )
-    for i, (code, name, colour) in enumerate(cats):
+    points = [c for c in cats if c[0] >= 0]
+    named = {c[0] for c in sorted(points, key=lambda c: -c[3])[:legend_limit]}
+    for i, (code, name, colour, _count) in enumerate(cats):
         fig.add_trace(
             {
                 "type": "scatter",
@@ -127,6 +166,7 @@ def basin_figure(
                 "name": name,
                 "marker": {"symbol": "square", "size": 14, "color": colour},
                 "legendrank": 10 + i,
+                "showlegend": code < 0 or code in named,
                 "uid": uid(
                     "basins",
                     "key",
@@ -134,6 +174,24 @@ def basin_figure(
                 ),
             }
         )
+    rest = [c for c in points if c[0] not in named]
+    if rest:
+        fig.add_trace(
+            {
+                "type": "scatter",
+                "x": [None],
+                "y": [None],
+                "mode": "markers",
+                "name": legend_summary(
+                    len(rest), sum(c[3] for c in rest) / label.size, noun="basins", of="starts"
+                ),
+                "marker": {"symbol": "square", "size": 14, "color": "rgba(0,0,0,0)"},
+                "legendrank": 10 + len(points) - 0.5,
+                "hoverinfo": "skip",
+                "uid": uid("basins", "legend-rest"),
+            }
+        )
+    _basin_letters(fig, label, a, b, minima, [c[0] for c in points])
     if surface is not None:
         lv = choose_levels(surface.loss)
         fig.add_trace(
@@ -153,7 +211,9 @@ def basin_figure(
                 "uid": uid("basins", "contours"),
             }
         )
-    add_critical_points(fig, minima, plane, "basins")
+    # letters of points with a basin on the map are written inside it instead
+    in_map = [minima.labels[c[0]] for c in points]
+    add_critical_points(fig, minima, plane, "basins", unlabelled=in_map)
     notes = []
     caution = slice_caution(plane)
     if caution:
@@ -167,11 +227,11 @@ def basin_figure(
     lr = cfg.get("learning_rate")
     sub = f"{label.shape[1]} × {label.shape[0]} starts, {cfg.get('optimizer', runs.rule)}"
     if lr:
-        sub += f", learning rate {', '.join(f'{x:.3g}' for x in lr)}"
+        sub += f", learning rate {', '.join(significant(x, 3) for x in lr)}"
     if cfg.get("steps"):
         sub += f", at most {cfg['steps']} steps"
     layout = base_layout(title or "Basins: where each start ends", sub)
-    layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left"})
+    layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left", "yanchor": "top"})
     layout["margin"].update({"r": 290, "b": 80 + 17 * len(notes)})
     layout["showlegend"] = True
     fig.update_layout(layout)
@@ -190,6 +250,36 @@ def basin_figure(
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     return fig.figure()
+
+
+def _basin_letters(
+    fig: FigureSpec, label: np.ndarray, a: np.ndarray, b: np.ndarray, minima: Any, codes: list[int]
+) -> None:
+    """Each basin's letter on a small white disc at the cell farthest inside the basin."""
+    centres = basin_centres(label, codes)
+    if not centres:
+        return
+    rows = [centres[c] for c in codes if c in centres]
+    fig.add_trace(
+        {
+            "type": "scatter",
+            "x": [float(a[j]) for _, j in rows],
+            "y": [float(b[i]) for i, _ in rows],
+            "text": [minima.labels[c] for c in codes if c in centres],
+            "mode": "markers+text",
+            "textposition": "middle center",
+            "textfont": {"size": 11, "color": "#111111"},
+            "marker": {
+                "size": 19,
+                "color": "rgba(255,255,255,0.82)",
+                "line": {"color": "#111111", "width": 0.6},
+            },
+            "hoverinfo": "skip",
+            "showlegend": False,
+            "name": "basin letters",
+            "uid": uid("basins", "letters"),
+        }
+    )
 
 
 def _end_colour(label: str, minima: Any) -> str:
@@ -243,7 +333,7 @@ def profile_figure(
                 "mode": "lines",
                 "name": "beyond the points" if part == "outside" else "between the points",
                 "line": style,
-                "hovertemplate": "t %{x:.3f}<br>loss %{y:.6g}<extra></extra>",
+                "hovertemplate": "t %{x:.3f}<br>loss %{y:.4~g}<extra></extra>",
                 "uid": uid("profile", part),
             }
         )
@@ -264,7 +354,7 @@ def profile_figure(
                 "line": {"color": "#111111", "width": 1},
             },
             "name": "the two points",
-            "hovertemplate": "%{text}<br>loss %{y:.6g}<extra></extra>",
+            "hovertemplate": "%{text}<br>loss %{y:.4~g}<extra></extra>",
             "uid": uid("profile", "ends"),
         }
     )
@@ -301,7 +391,7 @@ def profile_figure(
             fig.add_annotation(
                 x=t[k],
                 y=(top + base) / 2,
-                text=f"barrier {profile.barrier:.3g}",
+                text=f"barrier {significant(profile.barrier, 3)}",
                 showarrow=False,
                 xanchor="left",
                 xshift=8,
@@ -311,7 +401,7 @@ def profile_figure(
     dist = float(
         np.linalg.norm(np.asarray(profile.end, np.float64) - np.asarray(profile.start, np.float64))
     )
-    sub = f"distance between the points {dist:.4g}; barrier {profile.barrier:.4g}"
+    sub = f"distance between the points {significant(dist)}; barrier {significant(profile.barrier)}"
     layout = base_layout(title or f"Profile from {labels[0]} to {labels[1]}", sub)
     layout["margin"]["b"] = 100
     layout["showlegend"] = False

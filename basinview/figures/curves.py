@@ -6,16 +6,26 @@ from typing import Any
 
 import numpy as np
 import plotly.graph_objects as go
-from plotly._subplots import SubplotRef
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
 from .build import FigureSpec
 from .levels import choose_levels
-from .paths import colour_note, draw_indices, group_runs, select_runs
-from .style import DIVERGED, MAX_STEPS, OKABE_ITO, add_note, base_layout, uid
+from .overlays import add_legend_summary
+from .paths import OUTCOME_KEYS, colour_note, draw_indices, group_runs, legend_groups, select_runs
+from .style import (
+    DIVERGED,
+    LEGEND_LIMIT,
+    MAX_STEPS,
+    OKABE_ITO,
+    UNCONVERGED,
+    add_note,
+    base_layout,
+    uid,
+)
+from .text import readable_header, significant
 
-__all__ = ["REGIME_COLOURS", "loss_curves_figure", "step_size_figure"]
+__all__ = ["REGIME_COLOURS", "bound_labels", "loss_curves_figure", "step_size_figure"]
 
 #: One colour per step-size regime (Okabe & Ito 2008 palette).
 REGIME_COLOURS = {
@@ -37,13 +47,20 @@ def loss_curves_figure(
     yscale: str = "auto",
     max_paths: int = 60,
     max_points: int = 400,
+    legend_limit: int = LEGEND_LIMIT,
     title: str | None = None,
 ) -> go.Figure:
     """Loss against step for each run, coloured like the paths on the slice.
 
+    The loss axis is fitted to the runs that did not diverge, so one run
+    that blows up does not flatten every other curve; a diverged run's
+    curve leaves the axis at the top, where a grey triangle marks the step
+    it left (hover gives its last finite loss). Runs that did not converge
+    are drawn fainter and thinner than those that did.
+
     Args:
         runs: descent runs.
-        minima, which, color_by, max_paths, max_points: as for
+        minima, which, color_by, max_paths, max_points, legend_limit: as for
             :func:`~basinview.figures.slice_figure`.
         yscale: ``"auto"`` (logarithmic when every drawn loss is positive,
             else linear, which the axis title says), ``"log"`` (needs
@@ -57,23 +74,26 @@ def loss_curves_figure(
     groups, left_out = select_runs(
         group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
     )
+    shown = legend_groups(groups, legend_limit)
     drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
+    status = np.asarray(runs.status)
     losses = np.asarray(runs.losses, dtype=np.float64)
     values = np.concatenate([runs.loss_curve(r) for r in drawn]) if drawn.size else np.zeros(0)
     values = values[np.isfinite(values)]
     low = float(values.min()) if values.size else 0.0
     if yscale == "log" and values.size and low <= 0:
         raise ParameterError(
-            f"yscale='log' needs positive losses; the lowest drawn loss is {low:.4g}. "
+            f"yscale='log' needs positive losses; the lowest drawn loss is {significant(low)}. "
             "Use yscale='excess' (loss minus the lowest loss) or 'linear'."
         )
     if yscale == "auto":
         yscale = "log" if low > 0 else "linear"
     shift = low if yscale == "excess" else 0.0
+    log_axis = yscale in ("log", "excess")
     axis_title = {
         "log": "loss (log scale)",
         "linear": "loss" if low > 0 or not values.size else "loss (linear: some losses ≤ 0)",
-        "excess": f"loss − lowest loss reached ({low:.5g}), log scale",
+        "excess": f"loss − lowest loss reached ({significant(low, 5)}), log scale",
     }[yscale]
     fig = FigureSpec()
     for rank, g in enumerate(groups):
@@ -82,12 +102,12 @@ def loss_curves_figure(
             keep = draw_indices(int(runs.stop_step[r]) + 1, max_points)
             y = losses[r, keep] - shift
             y[~np.isfinite(y)] = np.nan
-            if yscale in ("log", "excess"):
+            if log_axis:
                 y[y <= 0] = np.nan
             xs.append(np.append(keep, np.nan))
             ys.append(np.append(y, np.nan))
             cs.append(np.append(np.full(keep.size, r, dtype=np.float64), np.nan))
-        thin = g.key == "diverged"
+        faint = g.key in OUTCOME_KEYS or not np.any(status[g.runs] == "converged")
         fig.add_trace(
             {
                 "type": "scatter",
@@ -96,16 +116,23 @@ def loss_curves_figure(
                 "customdata": np.stack([np.concatenate(cs), np.concatenate(ys) + shift], axis=1),
                 "mode": "lines",
                 "name": g.name,
+                "legendgroup": g.key,
                 "legendrank": 10 + rank,
-                "line": {"color": g.colour, "width": 1.2 if thin else 1.8, "dash": g.dash},
-                "opacity": 0.8 if thin else 0.9,
+                "showlegend": g.key in shown,
+                "line": {
+                    "color": g.colour,
+                    "width": UNCONVERGED["width"] if faint else 1.8,
+                    "dash": g.dash,
+                },
+                "opacity": UNCONVERGED["opacity"] + 0.2 if faint else 0.9,
                 "hovertemplate": (
-                    "run %{customdata[0]}<br>step %{x}<br>loss %{customdata[1]:.6g}"
+                    "run %{customdata[0]}<br>step %{x}<br>loss %{customdata[1]:.4~g}"
                     "<extra>%{fullData.name}</extra>"
                 ),
                 "uid": uid("curves", "runs", g.key),
             }
         )
+    add_legend_summary(fig, groups, shown, "curves")
     notes = []
     if left_out:
         notes.append(
@@ -113,35 +140,101 @@ def loss_curves_figure(
         )
     if colour_note(groups):
         notes.append(colour_note(groups).split(":")[0] + "; hover or the legend tells them apart.")
-    n_div = int(np.sum(np.asarray(runs.status)[drawn] == "diverged"))
-    if n_div:
+    diverged = drawn[status[drawn] == "diverged"]
+    yrange = _tame_range(runs, drawn[status[drawn] != "diverged"], shift, log_axis)
+    if diverged.size:
         notes.append(
-            f"{n_div} drawn run(s) diverged (grey, dashed): each curve ends where the loss became "
-            "non-finite or rose past the divergence threshold."
+            f"{diverged.size} drawn run(s) diverged (grey, dashed): each curve ends where the "
+            "loss became non-finite or rose past the divergence threshold."
         )
+        if yrange is not None:
+            _mark_diverged(fig, runs, diverged, yrange, shift, log_axis)
+            notes.append(
+                "The loss axis is fitted to the runs that did not diverge; ▲ at the top marks "
+                "where a diverged run leaves it."
+            )
     layout = base_layout(title or "Loss against step", f"{len(runs)} runs of {runs.rule}")
     layout["margin"]["b"] = 80 + 17 * len(notes)
     layout["showlegend"] = True
     fig.update_layout(layout)
     yaxis: dict[str, Any] = {
         "title": {"text": axis_title},
-        "type": "log" if yscale in ("log", "excess") else "linear",
+        "type": "log" if log_axis else "linear",
     }
-    if yscale in ("log", "excess"):
-        yaxis.update(dtick=1, exponentformat="power")
+    if log_axis:
+        yaxis.update(exponentformat="power")
+    if yrange is not None and diverged.size:
+        yaxis["range"] = list(yrange)
     fig.update_layout({"xaxis": {"title": {"text": "step"}, "rangemode": "tozero"}, "yaxis": yaxis})
-    if yscale == "linear":
-        tame = np.concatenate(
-            [runs.loss_curve(r) for r in drawn if runs.status[r] != "diverged"] or [np.zeros(0)]
-        )
-        tame = tame[np.isfinite(tame)]
-        if n_div and tame.size:
-            pad = 0.05 * (tame.max() - tame.min() or 1.0)
-            fig.layout["yaxis"]["range"] = [float(tame.min() - pad), float(tame.max() + pad)]
-            notes.append("The axis is fitted to the runs that did not diverge.")
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     return fig.figure()
+
+
+def _tame_range(
+    runs: Runs, tame: np.ndarray, shift: float, log_axis: bool
+) -> tuple[float, float] | None:
+    """Axis range (log10 units on a log axis) covering the drawn curves of ``tame`` runs."""
+    if not tame.size:
+        return None
+    vals = np.concatenate([runs.loss_curve(r) for r in tame]).astype(np.float64) - shift
+    vals = vals[np.isfinite(vals)]
+    if log_axis:
+        vals = vals[vals > 0]
+    if not vals.size:
+        return None
+    lo, hi = float(vals.min()), float(vals.max())
+    if log_axis:
+        lo, hi = np.log10(lo), np.log10(hi)
+        pad = 0.05 * (hi - lo or 1.0)
+    else:
+        pad = 0.05 * (hi - lo or abs(hi) or 1.0)
+    return float(lo - pad), float(hi + pad)
+
+
+def _mark_diverged(
+    fig: FigureSpec,
+    runs: Runs,
+    diverged: np.ndarray,
+    yrange: tuple[float, float],
+    shift: float,
+    log_axis: bool,
+) -> None:
+    """A marker at the top edge where each diverged run's curve leaves the axis."""
+    top = 10 ** yrange[1] if log_axis else yrange[1]
+    xs, rows = [], []
+    for r in diverged:
+        curve = np.asarray(runs.loss_curve(r), dtype=np.float64) - shift
+        out = ~np.isfinite(curve) | (curve > top)
+        k = int(np.argmax(out)) if out.any() else curve.size - 1
+        finite = np.flatnonzero(np.isfinite(curve[: k + 1]))
+        last = float(curve[finite[-1]] + shift) if finite.size else np.nan
+        xs.append(k)
+        rows.append([float(r), last])
+    fig.add_trace(
+        {
+            "type": "scatter",
+            "x": np.asarray(xs, dtype=np.float64),
+            "y": np.full(len(xs), top),
+            "customdata": np.asarray(rows, dtype=np.float64),
+            "mode": "markers",
+            "name": "diverged: leaves the axis",
+            "legendgroup": "diverged",
+            "showlegend": False,
+            "cliponaxis": False,
+            "marker": {
+                "symbol": "triangle-up",
+                "size": 10,
+                "color": DIVERGED["colour"],
+                "line": {"color": "white", "width": 1},
+            },
+            "hovertemplate": (
+                "run %{customdata[0]} diverged<br>leaves the axis at step %{x}"
+                "<br>loss there %{customdata[1]:.4~g}<extra></extra>"
+            ),
+            "uid": uid("curves", "diverged-edge"),
+        }
+    )
 
 
 def _edges(rates: np.ndarray) -> np.ndarray:
@@ -187,8 +280,9 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
         else np.full(len(table), np.nan)
     )
     ratio_text = np.array(
-        [f"{r:.3g}" if np.isfinite(r) else "n/a" for r in ratio], dtype=object
+        [significant(r, 3) if np.isfinite(r) else "n/a" for r in ratio], dtype=object
     )
+    value_text = np.array([significant(v) for v in values], dtype=object)
     fig = _two_rows()
     edges = _edges(rates)
     finite = values[np.isfinite(values)]
@@ -216,7 +310,7 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
                     [
                         np.concatenate(
                             [
-                                values[shown].astype(object),
+                                value_text[shown],
                                 np.full(lost.sum(), "none (not finite)", dtype=object),
                             ]
                         ),
@@ -235,7 +329,7 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
                     "line": {"color": colour if lost.any() else "white", "width": 1.5},
                 },
                 "hovertemplate": (
-                    "learning rate %{x:.4g}<br>" + column.replace("_", " ") + " %{customdata[0]}"
+                    "learning rate %{x:.4~g}<br>" + readable_header(column) + " %{customdata[0]}"
                     "<br>stability ratio %{customdata[1]}"
                     f"<extra>{regime}</extra>"
                 ),
@@ -275,11 +369,11 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
                 "name": name,
                 "legendgroup": "status",
                 "legendgrouptitle": {"text": "share of runs"},
-                "legendrank": 20 + rank,
+                "legendrank": 22 - rank,  # top to bottom as stacked: diverged first
                 "line": {"color": colour, "width": 1},
                 "fillcolor": _tint(colour, 0.45),
                 "marker": {"size": 5},
-                "hovertemplate": "learning rate %{x:.4g}<br>%{y:.0%} " + name + "<extra></extra>",
+                "hovertemplate": "learning rate %{x:.4~g}<br>%{y:.0%} " + name + "<extra></extra>",
                 "uid": uid("sweep", "share", name.replace(" ", "-")),
                 **_ROW[2],
             }
@@ -299,13 +393,15 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
             y1=1,
             yref="y domain",
         )
-    _bounds(fig, sweep)
     subtitle = (
-        f"{sweep.optimizer}, λmax = {sweep.lambda_max:.4g}" if _has(sweep, "lambda_max") else ""
+        f"{sweep.optimizer}, λmax = {significant(sweep.lambda_max)}"
+        if _has(sweep, "lambda_max")
+        else ""
     )
     layout = base_layout(title or "Step size: what each learning rate did", subtitle)
     layout["margin"]["b"] = 100
     layout["showlegend"] = True
+    layout["legend"]["traceorder"] = "grouped"
     fig.update_layout(layout)
     log_x = {
         "type": "log",
@@ -325,6 +421,7 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
             "yaxis2": {"title": {"text": "share"}, "range": [0, 1], "tickformat": ".0%"},
         }
     )
+    _bounds(fig, sweep)
     missing = int(np.sum(~np.isfinite(values)))
     note = (
         "The predicted bound comes from the curvature at one point; elsewhere the loss may be "
@@ -343,9 +440,9 @@ _ROW = {1: {"xaxis": "x", "yaxis": "y"}, 2: {"xaxis": "x2", "yaxis": "y2"}}
 def _two_rows() -> FigureSpec:
     """Two panels sharing the x axis, heights 0.68 : 0.32 with a 0.06 gap.
 
-    The same layout (and subplot grid, so ``fig.add_trace(..., row=2, col=1)``
-    works on the result) as ``plotly.subplots.make_subplots(rows=2, cols=1,
-    shared_xaxes=True, row_heights=[0.68, 0.32], vertical_spacing=0.06)``.
+    Plain layout dicts: each panel's axes name their domain and anchor, and
+    traces say which axes they use (``_ROW``), so only plotly's public
+    figure schema is involved.
     """
     fig = FigureSpec(
         {
@@ -360,12 +457,6 @@ def _two_rows() -> FigureSpec:
             "yaxis2": {"anchor": "x2", "domain": [0.0, 0.3008]},
         }
     )
-    grid = [
-        [(SubplotRef("xy", ("xaxis", "yaxis"), {"xaxis": "x", "yaxis": "y"}),)],
-        [(SubplotRef("xy", ("xaxis2", "yaxis2"), {"xaxis": "x2", "yaxis": "y2"}),)],
-    ]
-    text = "This is the format of your plot grid:\n[ (1,1) x,y   ]\n[ (2,1) x2,y2 ]\n"
-    fig.grid = (text, grid)
     return fig
 
 
@@ -379,14 +470,55 @@ def _has(obj: Any, name: str) -> bool:
     return value is not None and np.isfinite(value)
 
 
+#: Two bound labels closer than this share of the log-rate axis go on separate rows.
+_LABEL_GAP = 0.35
+
+
+def bound_labels(bounds: list[tuple[str, float]], span: tuple[float, float]) -> list[dict]:
+    """Where to write the bound labels so that no two overlap.
+
+    ``bounds`` are ``(label, rate)`` pairs, ``span`` the axis range in log10
+    units. Equal rates share one label ("predicted and observed bound 1");
+    of two different rates the lower one's text runs to the left of its
+    line and the higher one's to the right, and when they are closer than
+    :data:`_LABEL_GAP` of the axis the second goes one row lower. A label
+    near the right end of the axis runs to the left.
+
+    Returns:
+        One dict per label: ``text``, ``x`` (log10 position), ``xanchor``
+        and ``row`` (0 = top).
+    """
+    items = sorted(((float(x), label) for label, x in bounds if np.isfinite(x) and x > 0))
+    merged: list[tuple[float, list[str]]] = []
+    for x, label in items:
+        if merged and abs(np.log10(x) - np.log10(merged[-1][0])) <= 1e-9:
+            merged[-1][1].append(label)
+        else:
+            merged.append((x, [label]))
+    width = max(span[1] - span[0], 1e-12)
+    out = []
+    for i, (x, labels) in enumerate(merged):
+        pos = float(np.log10(x))
+        names = " and ".join(labels)
+        text = f"{names} bound{'s' if len(labels) > 1 else ''} {significant(x, 3)}"
+        if len(merged) == 1:
+            anchor = "right" if (pos - span[0]) / width > 0.65 else "left"
+        else:
+            anchor = "right" if i == 0 else "left"
+        row = 0
+        if i and abs(pos - out[-1]["x"]) / width < _LABEL_GAP:
+            row = out[-1]["row"] + 1
+        out.append({"text": text, "x": pos, "xanchor": anchor, "row": row})
+    return out
+
+
 def _bounds(fig: FigureSpec, sweep: Any) -> None:
-    for name, dash, label, anchor in (
-        ("predicted_bound", "dash", "predicted bound", "left"),
-        ("observed_bound", "dot", "observed bound", "right"),
-    ):
+    found = []
+    for name, dash in (("predicted_bound", "dash"), ("observed_bound", "dot")):
         if not _has(sweep, name):
             continue
         x = float(getattr(sweep, name))
+        found.append((name.split("_")[0], x))
         for xref, yref in (("x", "y domain"), ("x2", "y2 domain")):
             fig.add_shape(
                 line={"color": "#111111", "dash": dash, "width": 1.6},
@@ -398,16 +530,19 @@ def _bounds(fig: FigureSpec, sweep: Any) -> None:
                 y1=1,
                 yref=yref,
             )
+    span = fig.layout.get("xaxis", {}).get("range") or [-1.0, 1.0]
+    for item in bound_labels(found, (float(span[0]), float(span[1]))):
         # Annotations on a log axis take log10 positions (shapes take data values).
         fig.add_annotation(
-            x=np.log10(x),
+            x=item["x"],
             xref="x",
             y=1,
             yref="y domain",
             yanchor="top",
-            xanchor=anchor,
-            xshift=4 if anchor == "left" else -4,
-            text=f"{label} {x:.3g}",
+            yshift=-20 * item["row"],
+            xanchor=item["xanchor"],
+            xshift=4 if item["xanchor"] == "left" else -4,
+            text=item["text"],
             showarrow=False,
             font={"size": 12},
             bgcolor="rgba(255,255,255,0.85)",
