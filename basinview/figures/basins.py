@@ -79,12 +79,16 @@ def basin_centres(label: np.ndarray, codes: list[int]) -> dict[int, tuple[int, i
         {0: (1, 1), 1: (1, 3)}
     """
     out = {}
+    rows, cols = np.indices(label.shape)
     for code in codes:
-        mask = np.pad(label == code, 1)
-        if not mask.any():
+        inside = label == code
+        if not inside.any():
             continue
-        depth = ndimage.distance_transform_edt(mask)[1:-1, 1:-1]
-        out[code] = tuple(int(i) for i in np.unravel_index(np.argmax(depth), depth.shape))
+        depth = ndimage.distance_transform_edt(np.pad(inside, 1))[1:-1, 1:-1]
+        # among the deepest cells, the one nearest the basin's centroid
+        near = np.hypot(rows - rows[inside].mean(), cols - cols[inside].mean())
+        score = np.where(inside, depth - 1e-3 * near / max(label.shape), -np.inf)
+        out[code] = tuple(int(i) for i in np.unravel_index(np.argmax(score), score.shape))
     return out
 
 
@@ -155,7 +159,9 @@ def basin_figure(
         }
     )
     points = [c for c in cats if c[0] >= 0]
-    named = {c[0] for c in sorted(points, key=lambda c: -c[3])[:legend_limit]}
+    # one line summing up a single basin saves nothing: name it instead
+    cap = legend_limit + 1 if len(points) == legend_limit + 1 else legend_limit
+    named = {c[0] for c in sorted(points, key=lambda c: -c[3])[:cap]}
     for i, (code, name, colour, _count) in enumerate(cats):
         fig.add_trace(
             {
@@ -191,7 +197,10 @@ def basin_figure(
                 "uid": uid("basins", "legend-rest"),
             }
         )
-    _basin_letters(fig, label, a, b, minima, [c[0] for c in points])
+    # a point lying in its own basin keeps its letter beside its marker; the others'
+    # letters are written inside their basins
+    own = _points_in_own_basin(label, a, b, minima, plane, [c[0] for c in points])
+    _basin_letters(fig, label, a, b, minima, [c[0] for c in points if c[0] not in own])
     if surface is not None:
         lv = choose_levels(surface.loss)
         fig.add_trace(
@@ -212,7 +221,7 @@ def basin_figure(
             }
         )
     # letters of points with a basin on the map are written inside it instead
-    in_map = [minima.labels[c[0]] for c in points]
+    in_map = [minima.labels[c[0]] for c in points if c[0] not in own]
     add_critical_points(fig, minima, plane, "basins", unlabelled=in_map)
     notes = []
     caution = slice_caution(plane)
@@ -250,6 +259,26 @@ def basin_figure(
     for i, text in enumerate(notes):
         add_note(fig, text, row=i)
     return fig.figure()
+
+
+def _points_in_own_basin(
+    label: np.ndarray, a: np.ndarray, b: np.ndarray, minima: Any, plane: Any, codes: list[int]
+) -> set[int]:
+    """Codes of the points whose projection falls on a cell of their own basin."""
+    if not codes:
+        return set()
+    pa, pb, _ = plane.project(np.asarray(minima.points, dtype=np.float64))
+    da = (a[1] - a[0]) / 2 if a.size > 1 else np.inf
+    db = (b[1] - b[0]) / 2 if b.size > 1 else np.inf
+    own = set()
+    for code in codes:
+        x, y = float(pa[code]), float(pb[code])
+        if not (a[0] - da <= x <= a[-1] + da and b[0] - db <= y <= b[-1] + db):
+            continue
+        j, i = int(np.argmin(np.abs(a - x))), int(np.argmin(np.abs(b - y)))
+        if label[i, j] == code:
+            own.add(code)
+    return own
 
 
 def _basin_letters(

@@ -12,7 +12,15 @@ from ..core.errors import ParameterError
 from .build import FigureSpec
 from .levels import choose_levels
 from .overlays import add_legend_summary
-from .paths import OUTCOME_KEYS, colour_note, draw_indices, group_runs, legend_groups, select_runs
+from .paths import (
+    OUTCOME_KEYS,
+    colour_note,
+    draw_indices,
+    group_runs,
+    legend_groups,
+    select_runs,
+    settled,
+)
 from .style import (
     DIVERGED,
     LEGEND_LIMIT,
@@ -107,7 +115,7 @@ def loss_curves_figure(
             xs.append(np.append(keep, np.nan))
             ys.append(np.append(y, np.nan))
             cs.append(np.append(np.full(keep.size, r, dtype=np.float64), np.nan))
-        faint = g.key in OUTCOME_KEYS or not np.any(status[g.runs] == "converged")
+        faint = g.key in OUTCOME_KEYS or not np.any(settled(runs, g.runs))
         fig.add_trace(
             {
                 "type": "scatter",
@@ -163,6 +171,11 @@ def loss_curves_figure(
     }
     if log_axis:
         yaxis.update(exponentformat="power")
+        decades = _tame_range(runs, drawn, shift, log_axis) if yrange is None else yrange
+        if decades is not None and decades[1] - decades[0] >= 2.5:
+            yaxis["dtick"] = 1  # a label per decade; no crowded minor labels
+        elif decades is not None and decades[1] - decades[0] >= 1:
+            yaxis["dtick"] = "D2"  # 1, 2 and 5 of each decade
     if yrange is not None and diverged.size:
         yaxis["range"] = list(yrange)
     fig.update_layout({"xaxis": {"title": {"text": "step"}, "rangemode": "tozero"}, "yaxis": yaxis})

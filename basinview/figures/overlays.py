@@ -16,7 +16,7 @@ from ..core.descent import Runs
 from ..core.errors import ParameterError
 from ..core.planes import Plane
 from .build import FigureSpec
-from .paths import OUTCOME_KEYS, PathGroup, legend_groups, legend_summary, stack_paths
+from .paths import OUTCOME_KEYS, PathGroup, legend_groups, legend_summary, settled, stack_paths
 from .style import LEGEND_LIMIT, UNCONVERGED, uid
 
 __all__ = [
@@ -72,11 +72,14 @@ def _end_points(runs: Runs, group: PathGroup, bounds: tuple[float, float, float,
 
 
 def _split_unconverged(runs: Runs, group: PathGroup) -> tuple[np.ndarray, np.ndarray]:
-    """The group's drawn runs that converged, and those that did not (drawn fainter)."""
-    status = np.asarray(runs.status)[group.runs]
+    """The group's drawn runs that settled, and those that did not (drawn fainter).
+
+    Settled: converged without oscillating (:func:`~basinview.figures.paths.settled`).
+    """
     if group.key in OUTCOME_KEYS:
         return group.runs[:0], group.runs
-    return group.runs[status == "converged"], group.runs[status != "converged"]
+    calm = settled(runs, group.runs)
+    return group.runs[calm], group.runs[~calm]
 
 
 def add_legend_summary(
@@ -117,8 +120,9 @@ def add_paths(
 ) -> None:
     """Draw the groups' paths, end markers and starts (see :func:`slice_figure`).
 
-    Runs that converged are drawn bold on a white casing; runs that did not
-    (spent the budget, oscillating, not stationary, diverged) fainter,
+    Runs that converged without oscillating are drawn bold on a white
+    casing; the others (oscillating, spent the budget, not stationary,
+    diverged) fainter,
     thinner, with fewer points and no casing, so that a run zig-zagging
     across the view does not hide the contours. The legend names the
     ``legend_limit`` largest groups and every outcome; one entry sums up

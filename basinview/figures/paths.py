@@ -23,6 +23,7 @@ import numpy as np
 from ..core.descent import Runs
 from ..core.errors import ParameterError
 from ..core.minima import DIVERGED_LABEL, MAX_STEPS_LABEL, NOT_STATIONARY_LABEL
+from ..core.runs import oscillation_measures
 from .style import (
     DISTINCT_COLOURS,
     DIVERGED,
@@ -46,6 +47,7 @@ __all__ = [
     "legend_summary",
     "percent",
     "select_runs",
+    "settled",
     "stack_paths",
 ]
 
@@ -75,6 +77,24 @@ def colour_note(groups: list[PathGroup]) -> str:
     )
 
 
+def settled(runs: Runs, members: np.ndarray) -> np.ndarray:
+    """Which of ``members`` converged without oscillating (drawn bold; the rest faint).
+
+    A run counts as oscillating by the measure of the runs table
+    (:func:`~basinview.core.runs.oscillation_measures`: the loss alternates up
+    and down, or successive gradients point against each other, in at least
+    half the steps of the run's later half).
+    """
+    members = np.asarray(members, dtype=int)
+    status = np.asarray(runs.status)[members]
+    out = status == "converged"
+    for i in np.flatnonzero(out):
+        r = int(members[i])
+        alt, rev = oscillation_measures(runs.losses[r], runs.cosines[r], int(runs.stop_step[r]))
+        out[i] = max(alt, rev) < 0.5
+    return out
+
+
 def legend_groups(groups: list[PathGroup], limit: int = LEGEND_LIMIT) -> set[str]:
     """Keys of the groups the legend names: the ``limit`` largest categories and every outcome.
 
@@ -86,7 +106,8 @@ def legend_groups(groups: list[PathGroup], limit: int = LEGEND_LIMIT) -> set[str
         raise ParameterError(f"legend_limit must be a positive integer; got {limit!r}.")
     cats = [g for g in groups if g.key not in OUTCOME_KEYS]
     order = sorted(range(len(cats)), key=lambda i: -cats[i].total)
-    keep = {cats[i].key for i in order[:limit]}
+    # one line summing up a single group saves nothing: name it instead
+    keep = {cats[i].key for i in order[: limit + 1 if len(cats) == limit + 1 else limit]}
     return keep | {g.key for g in groups if g.key in OUTCOME_KEYS}
 
 
@@ -95,15 +116,18 @@ def legend_summary(
 ) -> str:
     """The legend line standing for groups the legend does not name.
 
+    ``noun`` is plural; one group drops its final "s".
+
     Examples:
         >>> legend_summary(17, 0.3123, noun="basins", of="starts")
         '+ 17 more basins (31% of starts)'
-        >>> legend_summary(2, 0.004)
-        '+ 2 more groups (<1% of runs)'
+        >>> legend_summary(1, 0.004)
+        '+ 1 more group (<1% of runs)'
     """
+    word = noun[:-1] if rest == 1 and noun.endswith("s") else noun
     if share is None:
-        return f"+ {rest} more {noun}"
-    return f"+ {rest} more {noun} ({percent(share)} of {of})"
+        return f"+ {rest} more {word}"
+    return f"+ {rest} more {word} ({percent(share)} of {of})"
 
 
 def percent(share: float) -> str:

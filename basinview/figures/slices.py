@@ -24,7 +24,7 @@ from .overlays import (
     add_paths,
     check_runs_plane,
 )
-from .paths import colour_note, group_runs, select_runs, stack_paths
+from .paths import colour_note, group_runs, select_runs, settled, stack_paths
 from .style import (
     LEGEND_LIMIT,
     SURFACE_SCALE,
@@ -263,12 +263,11 @@ def relief_figure(
             group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
         )
         box = (surface.a[0], surface.a[-1], surface.b[0], surface.b[-1], zlo, zhi * 1.05)
-        status = np.asarray(runs.status)
         for g in groups:
             s = stack_paths(runs, g.runs, max_points=max_points, with_z=True)
             x, y, zz = _clip_box(s["x"], s["y"], s["z"], box, log_z)
-            # a group none of whose runs converged is drawn faint and thin, as on the slice
-            faint = not np.any(status[g.runs] == "converged")
+            # a group none of whose runs settled is drawn faint and thin, as on the slice
+            faint = not np.any(settled(runs, g.runs))
             fig.add_trace(
                 {
                     "type": "scatter3d",
