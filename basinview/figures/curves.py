@@ -199,7 +199,7 @@ def _tame_range(
     lo, hi = float(vals.min()), float(vals.max())
     if log_axis:
         lo, hi = np.log10(lo), np.log10(hi)
-        pad = 0.05 * (hi - lo or 1.0)
+        pad = min(0.05 * (hi - lo or 1.0), 0.1)  # at most a quarter of a decade
     else:
         pad = 0.05 * (hi - lo or abs(hi) or 1.0)
     return float(lo - pad), float(hi + pad)
@@ -483,25 +483,30 @@ def _has(obj: Any, name: str) -> bool:
     return value is not None and np.isfinite(value)
 
 
-#: Two bound labels closer than this share of the log-rate axis go on separate rows.
-_LABEL_GAP = 0.35
-
-
 def bound_labels(bounds: list[tuple[str, float]], span: tuple[float, float]) -> list[dict]:
     """Where to write the bound labels so that no two overlap.
 
     ``bounds`` are ``(label, rate)`` pairs, ``span`` the axis range in log10
-    units. Equal rates share one label ("predicted and observed bound 1");
-    of two different rates the lower one's text runs to the left of its
-    line and the higher one's to the right, and when they are closer than
-    :data:`_LABEL_GAP` of the axis the second goes one row lower. A label
-    near the right end of the axis runs to the left.
+    units. Equal rates share one label ("predicted and observed bounds 1");
+    a label runs to the right of its line, or to the left in the right part
+    of the axis (so it stays inside the plot, clear of the legend); each
+    further label goes one row lower, so two never overlap whatever the
+    plot's width.
 
     Returns:
-        One dict per label: ``text``, ``x`` (log10 position), ``xanchor``
-        and ``row`` (0 = top).
+        One dict per label, in order of rate: ``text``, ``x`` (log10
+        position), ``xanchor`` and ``row`` (0 = top).
+
+    Examples:
+        >>> labels = bound_labels([("predicted", 0.3138), ("observed", 1.5)], (-2.0, 0.3))
+        >>> [(d["text"], d["xanchor"], d["row"]) for d in labels]
+        [('predicted bound 0.314', 'right', 0), ('observed bound 1.5', 'right', 1)]
+        >>> [d["text"] for d in bound_labels([("predicted", 1.0), ("observed", 1.0)], (-1, 1))]
+        ['predicted and observed bounds 1']
     """
-    items = sorted(((float(x), label) for label, x in bounds if np.isfinite(x) and x > 0))
+    items = sorted(
+        ((float(x), label) for label, x in bounds if np.isfinite(x) and x > 0), key=lambda i: i[0]
+    )
     merged: list[tuple[float, list[str]]] = []
     for x, label in items:
         if merged and abs(np.log10(x) - np.log10(merged[-1][0])) <= 1e-9:
@@ -509,18 +514,12 @@ def bound_labels(bounds: list[tuple[str, float]], span: tuple[float, float]) -> 
         else:
             merged.append((x, [label]))
     width = max(span[1] - span[0], 1e-12)
-    out = []
-    for i, (x, labels) in enumerate(merged):
+    out: list[dict] = []
+    for row, (x, labels) in enumerate(merged):
         pos = float(np.log10(x))
         names = " and ".join(labels)
         text = f"{names} bound{'s' if len(labels) > 1 else ''} {significant(x, 3)}"
-        if len(merged) == 1:
-            anchor = "right" if (pos - span[0]) / width > 0.65 else "left"
-        else:
-            anchor = "right" if i == 0 else "left"
-        row = 0
-        if i and abs(pos - out[-1]["x"]) / width < _LABEL_GAP:
-            row = out[-1]["row"] + 1
+        anchor = "right" if (pos - span[0]) / width > 0.6 else "left"
         out.append({"text": text, "x": pos, "xanchor": anchor, "row": row})
     return out
 
