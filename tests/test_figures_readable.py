@@ -21,7 +21,6 @@ import pytest
 from basinview import core
 from basinview import figures as F
 from basinview.core.identities import letter
-from basinview.figures.curves import bound_labels
 from basinview.figures.paths import legend_summary, percent
 from basinview.figures.style import (
     DISTINCT_COLOURS,
@@ -30,6 +29,7 @@ from basinview.figures.style import (
     UNCONVERGED,
     category_colour,
 )
+from basinview.figures.sweep import bound_labels
 
 
 def egg_crate(p):
@@ -299,6 +299,7 @@ def _figures(crate, bowl_runs):
         "slice": F.slice_figure(surface, runs, minima=minima),
         "slice, legend cut": F.slice_figure(surface, runs, legend_limit=2),
         "relief": F.relief_figure(surface, runs),
+        "relief, legend cut": F.relief_figure(surface, runs, legend_limit=2),
         "curves": F.loss_curves_figure(runs),
         "curves, linear": F.loss_curves_figure(runs, yscale="linear", legend_limit=2),
         "sweep": F.step_size_figure(sweep),

@@ -214,10 +214,22 @@ def test_figure_modules_use_only_public_plotly():
     # in the figure builders.
     import inspect
 
-    from basinview.figures import basins, curves, instruments, levels, overlays, paths
-    from basinview.figures import slices, style, text
+    from basinview.figures import (
+        basins,
+        curves,
+        instruments,
+        levels,
+        overlays,
+        paths,
+        profile,
+        slices,
+        style,
+        sweep,
+        text,
+    )
 
-    for module in (basins, curves, instruments, levels, overlays, paths, slices, style, text):
+    modules = (basins, curves, instruments, levels, overlays, paths, profile, slices, style)
+    for module in (*modules, sweep, text):
         source = inspect.getsource(module)
         assert "plotly._" not in source and "_plotly_utils" not in source, module.__name__
 

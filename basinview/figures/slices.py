@@ -24,7 +24,15 @@ from .overlays import (
     add_paths,
     check_runs_plane,
 )
-from .paths import colour_note, group_runs, select_runs, settled, stack_paths
+from .paths import (
+    colour_note,
+    group_runs,
+    legend_groups,
+    legend_summary,
+    select_runs,
+    settled,
+    stack_paths,
+)
 from .style import (
     LEGEND_LIMIT,
     SURFACE_SCALE,
@@ -218,6 +226,7 @@ def relief_figure(
     levels: str = "auto",
     max_paths: int = 30,
     max_points: int = 200,
+    legend_limit: int = LEGEND_LIMIT,
     title: str | None = None,
 ) -> go.Figure:
     """3-D surface of the loss over the slice, with descent paths draped on it.
@@ -263,6 +272,7 @@ def relief_figure(
             group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
         )
         box = (surface.a[0], surface.a[-1], surface.b[0], surface.b[-1], zlo, zhi * 1.05)
+        shown = legend_groups(groups, legend_limit)
         for g in groups:
             s = stack_paths(runs, g.runs, max_points=max_points, with_z=True)
             x, y, zz = _clip_box(s["x"], s["y"], s["z"], box, log_z)
@@ -277,10 +287,27 @@ def relief_figure(
                     "customdata": s["custom"],
                     "mode": "lines",
                     "name": g.name,
+                    "showlegend": g.key in shown,
                     "opacity": UNCONVERGED["opacity"] if faint else 1.0,
                     "line": {"color": g.colour, "width": 2 if faint else 5, "dash": g.dash},
                     "hovertemplate": PATH_HOVER,
                     "uid": uid("relief", "path", g.key),
+                }
+            )
+        hidden = [g for g in groups if g.key not in shown]
+        if hidden:
+            share = sum(g.total for g in hidden) / max(sum(g.total for g in groups), 1)
+            fig.add_trace(
+                {
+                    "type": "scatter3d",
+                    "x": [None],
+                    "y": [None],
+                    "z": [None],
+                    "mode": "lines",
+                    "name": legend_summary(len(hidden), share),
+                    "line": {"color": "rgba(0,0,0,0)"},
+                    "hoverinfo": "skip",
+                    "uid": uid("relief", "legend-rest"),
                 }
             )
         if left_out:
