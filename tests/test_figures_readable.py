@@ -193,13 +193,13 @@ def test_runs_that_did_not_settle_are_faint_and_thin(bowl_runs):
 
 def test_legend_of_paths_sums_up_small_groups(bowl_runs):
     prob, plane, surface, _ = bowl_runs
-    starts = np.stack([np.linspace(-1.5, 1.5, 14), np.full(14, 1.0)], axis=1).astype(np.float32)
-    runs = core.descend(prob, starts, learning_rate=0.2, steps=5, plane=plane)
+    starts = np.stack([np.linspace(-1.5, 1.5, 12), np.full(12, 1.0)], axis=1).astype(np.float32)
+    runs = core.descend(prob, starts, learning_rate=0.2, steps=60, plane=plane)
     fig = F.slice_figure(surface, runs, color_by="start", legend_limit=5)
     named = shown(fig, "slice-path-s")
     assert len(named) == 5
     summary = next(t for t in fig.data if t.uid == "slice-legend-rest")
-    assert summary.name == f"+ 9 more groups ({percent(9 / 14)} of runs)"
+    assert summary.name == f"+ 7 more groups ({percent(7 / 12)} of runs)"
     curves = F.loss_curves_figure(runs, color_by="start", legend_limit=5)
     assert len(shown(curves, "curves-runs-")) == 5
     assert next(t for t in curves.data if t.uid == "curves-legend-rest").name == summary.name
@@ -264,10 +264,14 @@ def test_bound_labels_never_overlap():
             assert lo >= -0.05 and hi <= 1.05, it
 
 
-def test_step_size_figure_staggers_close_bound_labels():
-    prob = core.Problem(bowl, {"x": 0.5, "y": 0.5})
+@pytest.fixture(scope="module")
+def sweep(bowl_runs):
+    prob = bowl_runs[0]
     starts = core.explicit_starts(prob, np.array([[1.5, 1.0], [-1.0, 1.2]], np.float32))
-    sweep = core.step_size_sweep(prob, starts, learning_rates=[0.01, 0.1, 0.5, 0.9, 1.1], steps=60)
+    return core.step_size_sweep(prob, starts, learning_rates=[0.01, 0.1, 0.5, 0.9, 1.1], steps=60)
+
+
+def test_step_size_figure_staggers_close_bound_labels(sweep):
     fig = F.step_size_figure(sweep)
     labels = [a for a in fig.layout.annotations if a.text.startswith(("observed", "predicted"))]
     # Source: the bound for gradient descent on a quadratic with Hessian 2 I is 2 / 2 = 1
@@ -280,16 +284,10 @@ def test_step_size_figure_staggers_close_bound_labels():
 # ------------------------------------------------------------------ numbers, schema
 
 
-def _figures(crate, bowl_runs):
+def _figures(crate, bowl_runs, sweep):
     _, _, bm, csurf = crate
     _, _, surface, runs = bowl_runs
     minima = None
-    sweep_starts = core.explicit_starts(
-        bowl_runs[0], np.array([[1.5, 1.0], [-1.0, 1.2]], np.float32)
-    )
-    sweep = core.step_size_sweep(
-        bowl_runs[0], sweep_starts, learning_rates=[0.013, 0.13, 0.97, 1.3], steps=40
-    )
     profile = core.segment_profile(
         bowl_runs[0], {"x": -1.0, "y": 0.0}, {"x": 1.3, "y": 0.0}, resolution=21
     )
@@ -308,8 +306,8 @@ def _figures(crate, bowl_runs):
 
 
 @pytest.fixture(scope="module")
-def figures(crate, bowl_runs):
-    return _figures(crate, bowl_runs)
+def figures(crate, bowl_runs, sweep):
+    return _figures(crate, bowl_runs, sweep)
 
 
 def _texts(fig):
