@@ -17,6 +17,7 @@ from .levels import Levels, choose_levels
 from .paths import COLOR_BY
 from .slices import relief_figure, slice_caution, slice_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
+from .text import readable_table, significant
 
 __all__ = [
     "CATEGORY_COLOURS",
@@ -32,7 +33,9 @@ __all__ = [
     "density_figure",
     "loss_curves_figure",
     "profile_figure",
+    "readable_table",
     "relief_figure",
+    "significant",
     "slice_caution",
     "slice_figure",
     "step_size_figure",
