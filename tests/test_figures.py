@@ -573,13 +573,15 @@ def test_auto_colours_fall_back_when_no_run_reached_a_point(bowl_view):
 
 def test_more_groups_than_colours_change_the_end_marker_shape(bowl_view):
     prob, plane, surface, _ = bowl_view
-    starts = np.stack([np.linspace(-1.5, 1.5, 9), np.full(9, 1.0)], axis=1).astype(np.float32)
+    starts = np.stack([np.linspace(-1.5, 1.5, 23), np.full(23, 1.0)], axis=1).astype(np.float32)
     runs = core.descend(prob, starts, learning_rate=0.1, steps=5, plane=plane)
     fig = F.slice_figure(surface, runs, color_by="start")
     ends = {t.uid: t for t in fig.data if t.uid.startswith("slice-end-s")}
-    assert len(ends) == 9
+    assert len(ends) == 23
     assert ends["slice-end-s0"].marker.symbol == "circle"
-    assert ends["slice-end-s7"].marker.symbol == "square"
-    assert ends["slice-end-s7"].marker.color == ends["slice-end-s0"].marker.color
+    # the first 21 groups have colours of their own; the 22nd repeats the first, as a square
+    assert ends["slice-end-s7"].marker.color != ends["slice-end-s0"].marker.color
+    assert ends["slice-end-s21"].marker.symbol == "square"
+    assert ends["slice-end-s21"].marker.color == ends["slice-end-s0"].marker.color
     notes = " ".join(a.text for a in fig.layout.annotations)
-    assert "9 groups share 7 colours" in notes
+    assert "23 groups share 21 colours" in notes

@@ -190,12 +190,48 @@ def test_returned_figures_validate_later_edits(results):
     assert fig.layout.height == 500
 
 
-def test_step_size_figure_keeps_its_subplot_grid(results):
+def test_step_size_panels_are_plain_layout_domains(results):
+    # Two panels on public layout properties only (no subplot grid object): each
+    # trace names its axes, each axis its domain and anchor, and the panels do not overlap.
     fig = F.step_size_figure(results["sweep"])
-    fig.add_trace(go.Scatter(x=[0.1], y=[0.5], uid="extra"), row=2, col=1)
-    extra = fig.data[-1]
-    assert (extra.xaxis, extra.yaxis) == ("x2", "y2")
-    assert fig.get_subplot(1, 1).yaxis.domain == (0.3608, 1.0)
+    lay = fig.layout
+    assert lay.yaxis.domain == (0.3608, 1.0) and lay.yaxis2.domain == (0.0, 0.3008)
+    assert lay.yaxis2.domain[1] < lay.yaxis.domain[0]
+    assert (lay.xaxis.anchor, lay.yaxis.anchor) == ("y", "x")
+    assert (lay.xaxis2.anchor, lay.yaxis2.anchor) == ("y2", "x2")
+    assert lay.xaxis.matches == "x2"
+    for t in fig.data:
+        panel = "top" if t.uid.startswith(("sweep-regime", "sweep-trend")) else "bottom"
+        want = ("x", "y") if panel == "top" else ("x2", "y2")
+        assert (t.xaxis, t.yaxis) == want, t.uid
+    # a trace added later through plotly's public API lands on the bottom panel
+    fig.add_trace(go.Scatter(x=[0.1], y=[0.5], xaxis="x2", yaxis="y2", uid="extra"))
+    assert (fig.data[-1].xaxis, fig.data[-1].yaxis) == ("x2", "y2")
+
+
+def test_figure_modules_use_only_public_plotly():
+    # Only plotly's public API: no private modules (plotly._subplots, _plotly_utils)
+    # in the figure builders.
+    import inspect
+
+    from basinview.figures import (
+        basins,
+        curves,
+        instruments,
+        levels,
+        overlays,
+        paths,
+        profile,
+        slices,
+        style,
+        sweep,
+        text,
+    )
+
+    modules = (basins, curves, instruments, levels, overlays, paths, profile, slices, style)
+    for module in (*modules, sweep, text):
+        source = inspect.getsource(module)
+        assert "plotly._" not in source and "_plotly_utils" not in source, module.__name__
 
 
 def test_layout_merge_is_deep():
@@ -211,14 +247,12 @@ def test_layout_merge_is_deep():
 
 
 def test_named_colour_scales_match_plotly_validation():
-    # Source: plotly's ColorscaleValidator, which turns a scale name into
-    # [[position, colour], ...] when a figure is validated.
-    from _plotly_utils.basevalidators import ColorscaleValidator
-
+    # Source: plotly's own validation, which turns a scale name into
+    # [[position, colour], ...] when a trace is created (public go.Contour).
     from basinview.figures.style import SURFACE_SCALE, colour_scale
 
-    validator = ColorscaleValidator("colorscale", "contour")
     for name in (SURFACE_SCALE, "Viridis", "RdBu", "twilight", "cividis_r"):
-        assert colour_scale(name) == validator.validate_coerce(name), name
+        coerced = [list(stop) for stop in go.Contour(colorscale=name).colorscale]
+        assert colour_scale(name) == coerced, name
     with pytest.raises(ValueError, match="named colourscales"):
         colour_scale("no-such-scale")

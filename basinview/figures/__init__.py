@@ -19,6 +19,7 @@ from .paths import COLOR_BY
 from .slices import relief_figure, slice_caution, slice_figure
 from .schemes import scheme_colours, scheme_shares_figure, scheme_steps_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
+from .text import readable_table, significant
 
 __all__ = [
     "CATEGORY_COLOURS",
@@ -34,7 +35,9 @@ __all__ = [
     "density_figure",
     "loss_curves_figure",
     "profile_figure",
+    "readable_table",
     "relief_figure",
+    "significant",
     "slice_caution",
     "slice_figure",
     "solutions_figure",

@@ -1,4 +1,4 @@
-"""Figures of where runs end: the basin map of a slice and the profile between two points."""
+"""The basin map of a slice: where the run from each start ends (the profile is in .profile)."""
 
 from __future__ import annotations
 
@@ -6,46 +6,57 @@ from typing import Any
 
 import numpy as np
 import plotly.graph_objects as go
+from scipy import ndimage
 
 from ..core.errors import ParameterError
 from ..core.minima import OUTCOMES
-from ..core.surface import Profile, Surface
+from ..core.surface import Surface
 from .build import FigureSpec
 from .levels import choose_levels
 from .overlays import add_critical_points
+from .paths import legend_summary, percent
+from .profile import profile_figure
 from .slices import slice_caution
-from .style import OUTCOME_STYLES, add_note, base_layout, category_colour, uid
+from .style import LEGEND_LIMIT, OUTCOME_STYLES, add_note, base_layout, category_colour, uid
+from .text import significant
 
-__all__ = ["basin_figure", "profile_figure"]
+__all__ = ["basin_centres", "basin_figure", "profile_figure"]
 
 
-def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str]]:
-    """``(code, legend name, colour)`` for every code present in ``label``.
+def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str, int]]:
+    """``(code, legend name, colour, count)`` for every code present in ``label``.
 
-    Points are named by their letters and coloured by their colour index in
-    the problem's registry, so a basin has the letter and colour its point has
-    in every other figure; outcome labels use the names of
-    :data:`basinview.core.OUTCOMES`.
+    Points come in letter order (the registry's order, whatever order the
+    result lists them in), named by their letters and coloured by their
+    colour index in the problem's registry, so a basin has the letter and
+    colour its point has in every other figure; outcome labels follow, with
+    the names of :data:`basinview.core.OUTCOMES`.
     """
     total = label.size
     cats = []
     names = list(minima.labels)
     colours = np.asarray(minima.colour_index)
-    for k in range(len(names)):
+    for k in np.argsort(colours, kind="stable"):
+        k = int(k)
         count = int(np.sum(label == k))
         if count:
             name = (
-                f"{names[k]}: {minima.kind[k]}, loss {float(minima.loss[k]):.3g} "
-                f"({100 * count / total:.0f}% of starts)"
+                f"{names[k]}: {minima.kind[k]}, loss {significant(float(minima.loss[k]), 3)} "
+                f"({percent(count / total)} of starts)"
             )
-            cats.append((k, name, category_colour(int(colours[k]))))
+            cats.append((k, name, category_colour(int(colours[k])), count))
     for code, style in OUTCOME_STYLES.items():
         count = int(np.sum(label == code))
         if count:
             cats.append(
-                (code, f"{style['legend']} ({100 * count / total:.0f}% of starts)", style["colour"])
+                (
+                    code,
+                    f"{style['legend']} ({percent(count / total)} of starts)",
+                    style["colour"],
+                    count,
+                )
             )
-    unknown = sorted(set(np.unique(label).tolist()) - {c for c, _, _ in cats})
+    unknown = sorted(set(np.unique(label).tolist()) - {c[0] for c in cats})
     if unknown:
         known = ", ".join(f"{c} ({OUTCOMES[c]})" for c in sorted(OUTCOMES, reverse=True))
         raise ParameterError(
@@ -55,10 +66,38 @@ def _categories(label: np.ndarray, minima: Any) -> list[tuple[int, str, str]]:
     return cats
 
 
+def basin_centres(label: np.ndarray, codes: list[int]) -> dict[int, tuple[int, int]]:
+    """For each code, the ``(row, column)`` of its cell farthest inside its basin.
+
+    The cell with the largest distance to the nearest cell of another label
+    (or the map's edge) lies inside the basin even when the basin is curved
+    or in pieces (where its centroid may not), so a letter written there
+    sits on its own colour.
+
+    Examples:
+        >>> lab = np.array([[0, 0, 0, 1], [0, 0, 0, 1], [0, 0, 0, 1]])
+        >>> basin_centres(lab, [0, 1])
+        {0: (1, 1), 1: (1, 3)}
+    """
+    out = {}
+    rows, cols = np.indices(label.shape)
+    for code in codes:
+        inside = label == code
+        if not inside.any():
+            continue
+        depth = ndimage.distance_transform_edt(np.pad(inside, 1))[1:-1, 1:-1]
+        # among the deepest cells, the one nearest the basin's centroid
+        near = np.hypot(rows - rows[inside].mean(), cols - cols[inside].mean())
+        score = np.where(inside, depth - 1e-3 * near / max(label.shape), -np.inf)
+        out[code] = tuple(int(i) for i in np.unravel_index(np.argmax(score), score.shape))
+    return out
+
+
 def basin_figure(
     basin_map: Any,
     *,
     surface: Surface | None = None,
+    legend_limit: int = LEGEND_LIMIT,
     title: str | None = None,
 ) -> go.Figure:
     """Which minimum each start on the slice leads to.
@@ -67,14 +106,17 @@ def basin_figure(
     reached (its letter and colour are the point's in every figure on the
     problem); runs that diverged are grey, runs that spent their step budget
     (max_steps) dark grey and runs whose end point is not stationary slate.
-    The legend gives each basin's share of the starts.
-    Critical points found are marked with their letters (projected onto
-    the plane; hover shows how far off it they lie). With ``surface``,
-    contour lines of the loss are drawn on top.
+    Each basin's letter is written on the map at the cell farthest inside
+    it; the legend, in letter order, gives the shares of the starts for the
+    ``legend_limit`` largest basins and sums up the rest in one line.
+    Critical points found are marked (projected onto the plane; hover shows
+    how far off it they lie), with their letters when they have no basin on
+    the map. With ``surface``, contour lines of the loss are drawn on top.
 
     Args:
         basin_map: a :class:`~basinview.core.basins.BasinMap`.
         surface: optional surface on the same plane, drawn as contour lines.
+        legend_limit: the legend names at most this many basins (the largest).
         title: figure title.
     """
     label = np.asarray(basin_map.label)
@@ -88,13 +130,13 @@ def basin_figure(
     plane = basin_map.plane
     minima = basin_map.minima
     cats = _categories(label, minima)
-    index = {code: i for i, (code, _, _) in enumerate(cats)}
+    index = {c[0]: i for i, c in enumerate(cats)}
     z = np.vectorize(index.get)(label).astype(np.float64)
     n = len(cats)
     scale = []
-    for i, (_, _, colour) in enumerate(cats):
-        scale += [[i / n, colour], [(i + 1) / n, colour]]
-    names = [name.split(" (")[0] for _, name, _ in cats]
+    for i, c in enumerate(cats):
+        scale += [[i / n, c[2]], [(i + 1) / n, c[2]]]
+    names = [c[1].split(" (")[0] for c in cats]
     hover = np.array(names, dtype=object)[z.astype(int)]
     fig = FigureSpec()
     fig.add_trace(
@@ -110,14 +152,18 @@ def basin_figure(
             "opacity": 0.85,
             "customdata": hover,
             "hovertemplate": (
-                f"start {plane.axis_titles[0]} %{{x:.4g}}, {plane.axis_titles[1]} %{{y:.4g}}"
+                f"start {plane.axis_titles[0]} %{{x:.4~g}}, {plane.axis_titles[1]} %{{y:.4~g}}"
                 "<br>ends: %{customdata}<extra></extra>"
             ),
             "name": "basins",
             "uid": uid("basins", "map"),
         }
     )
-    for i, (code, name, colour) in enumerate(cats):
+    points = [c for c in cats if c[0] >= 0]
+    # one line summing up a single basin saves nothing: name it instead
+    cap = legend_limit + 1 if len(points) == legend_limit + 1 else legend_limit
+    named = {c[0] for c in sorted(points, key=lambda c: -c[3])[:cap]}
+    for i, (code, name, colour, _count) in enumerate(cats):
         fig.add_trace(
             {
                 "type": "scatter",
@@ -127,6 +173,7 @@ def basin_figure(
                 "name": name,
                 "marker": {"symbol": "square", "size": 14, "color": colour},
                 "legendrank": 10 + i,
+                "showlegend": code < 0 or code in named,
                 "uid": uid(
                     "basins",
                     "key",
@@ -134,6 +181,27 @@ def basin_figure(
                 ),
             }
         )
+    rest = [c for c in points if c[0] not in named]
+    if rest:
+        fig.add_trace(
+            {
+                "type": "scatter",
+                "x": [None],
+                "y": [None],
+                "mode": "markers",
+                "name": legend_summary(
+                    len(rest), sum(c[3] for c in rest) / label.size, noun="basins", of="starts"
+                ),
+                "marker": {"symbol": "square", "size": 14, "color": "rgba(0,0,0,0)"},
+                "legendrank": 10 + len(points) - 0.5,
+                "hoverinfo": "skip",
+                "uid": uid("basins", "legend-rest"),
+            }
+        )
+    # a point lying in its own basin keeps its letter beside its marker; the others'
+    # letters are written inside their basins
+    own = _points_in_own_basin(label, a, b, minima, plane, [c[0] for c in points])
+    _basin_letters(fig, label, a, b, minima, [c[0] for c in points if c[0] not in own])
     if surface is not None:
         lv = choose_levels(surface.loss)
         fig.add_trace(
@@ -153,7 +221,9 @@ def basin_figure(
                 "uid": uid("basins", "contours"),
             }
         )
-    add_critical_points(fig, minima, plane, "basins")
+    # letters of points with a basin on the map are written inside it instead
+    in_map = [minima.labels[c[0]] for c in points if c[0] not in own]
+    add_critical_points(fig, minima, plane, "basins", unlabelled=in_map)
     notes = []
     caution = slice_caution(plane)
     if caution:
@@ -167,11 +237,11 @@ def basin_figure(
     lr = cfg.get("learning_rate")
     sub = f"{label.shape[1]} × {label.shape[0]} starts, {cfg.get('optimizer', runs.rule)}"
     if lr:
-        sub += f", learning rate {', '.join(f'{x:.3g}' for x in lr)}"
+        sub += f", learning rate {', '.join(significant(x, 3) for x in lr)}"
     if cfg.get("steps"):
         sub += f", at most {cfg['steps']} steps"
     layout = base_layout(title or "Basins: where each start ends", sub)
-    layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left"})
+    layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left", "yanchor": "top"})
     layout["margin"].update({"r": 290, "b": 80 + 17 * len(notes)})
     layout["showlegend"] = True
     fig.update_layout(layout)
@@ -192,135 +262,51 @@ def basin_figure(
     return fig.figure()
 
 
-def _end_colour(label: str, minima: Any) -> str:
-    names = list(minima.labels) if minima is not None else []
-    if label in names:
-        return category_colour(int(minima.colour_index[names.index(label)]))
-    return "white"
+def _points_in_own_basin(
+    label: np.ndarray, a: np.ndarray, b: np.ndarray, minima: Any, plane: Any, codes: list[int]
+) -> set[int]:
+    """Codes of the points whose projection falls on a cell of their own basin."""
+    if not codes:
+        return set()
+    pa, pb, _ = plane.project(np.asarray(minima.points, dtype=np.float64))
+    da = (a[1] - a[0]) / 2 if a.size > 1 else np.inf
+    db = (b[1] - b[0]) / 2 if b.size > 1 else np.inf
+    own = set()
+    for code in codes:
+        x, y = float(pa[code]), float(pb[code])
+        if not (a[0] - da <= x <= a[-1] + da and b[0] - db <= y <= b[-1] + db):
+            continue
+        j, i = int(np.argmin(np.abs(a - x))), int(np.argmin(np.abs(b - y)))
+        if label[i, j] == code:
+            own.add(code)
+    return own
 
 
-def profile_figure(
-    profile: Profile,
-    *,
-    labels: tuple[str, str] = ("start", "end"),
-    minima: Any = None,
-    title: str | None = None,
-) -> go.Figure:
-    """The loss along the straight segment between two points, with the barrier marked.
-
-    With ``minima`` (whose letters the ``labels`` are), each end is drawn in
-    its point's colour; otherwise the ends are white stars, as critical points
-    are on the slice.
-
-    ``t = 0`` is the first point and ``t = 1`` the second; the segment is
-    extended a little beyond both ends (lighter line). The barrier is the
-    highest loss between the points above the higher of the two.
-
-    Caution: this is one straight path. A curved path between the same
-    points may rise less, so the barrier shown is an upper bound on the
-    lowest barrier between them.
-    """
-    t = np.asarray(profile.t, dtype=np.float64)
-    loss = np.asarray(profile.loss, dtype=np.float64)
-    loss = np.where(np.isfinite(loss), loss, np.nan)
-    inside = (t >= -1e-12) & (t <= 1 + 1e-12)
-    fig = FigureSpec()
-    for part, mask, style in (
-        ("outside", ~inside, {"color": "#9A9A9A", "width": 1.5}),
-        ("segment", inside, {"color": "#2B2B2B", "width": 2.5}),
-    ):
-        y = np.where(mask, loss, np.nan)
-        if part == "outside":
-            # keep the extension joined to the segment ends
-            edge = np.flatnonzero(inside)
-            if edge.size:
-                y[edge[[0, -1]]] = loss[edge[[0, -1]]]
-        fig.add_trace(
-            {
-                "type": "scatter",
-                "x": t,
-                "y": y,
-                "mode": "lines",
-                "name": "beyond the points" if part == "outside" else "between the points",
-                "line": style,
-                "hovertemplate": "t %{x:.3f}<br>loss %{y:.6g}<extra></extra>",
-                "uid": uid("profile", part),
-            }
-        )
-    ends = np.array([np.argmin(np.abs(t - 0.0)), np.argmin(np.abs(t - 1.0))])
+def _basin_letters(
+    fig: FigureSpec, label: np.ndarray, a: np.ndarray, b: np.ndarray, minima: Any, codes: list[int]
+) -> None:
+    """Each basin's letter on a small white disc at the cell farthest inside the basin."""
+    centres = basin_centres(label, codes)
+    if not centres:
+        return
+    rows = [centres[c] for c in codes if c in centres]
     fig.add_trace(
         {
             "type": "scatter",
-            "x": t[ends],
-            "y": loss[ends],
+            "x": [float(a[j]) for _, j in rows],
+            "y": [float(b[i]) for i, _ in rows],
+            "text": [minima.labels[c] for c in codes if c in centres],
             "mode": "markers+text",
-            "text": list(labels),
-            "textposition": "bottom center",
-            "textfont": {"size": 14},
+            "textposition": "middle center",
+            "textfont": {"size": 11, "color": "#111111"},
             "marker": {
-                "symbol": "star",
-                "size": 15,
-                "color": [_end_colour(lab, minima) for lab in labels],
-                "line": {"color": "#111111", "width": 1},
+                "size": 19,
+                "color": "rgba(255,255,255,0.82)",
+                "line": {"color": "#111111", "width": 0.6},
             },
-            "name": "the two points",
-            "hovertemplate": "%{text}<br>loss %{y:.6g}<extra></extra>",
-            "uid": uid("profile", "ends"),
+            "hoverinfo": "skip",
+            "showlegend": False,
+            "name": "basin letters",
+            "uid": uid("basins", "letters"),
         }
     )
-    seg = np.where(inside, loss, np.nan)
-    if np.isfinite(seg).any() and np.isfinite(loss[ends]).all():
-        k = int(np.nanargmax(seg))
-        top, base = float(seg[k]), float(np.max(loss[ends]))
-        fig.add_shape(
-            line={"color": "#6A6A6A", "dash": "dot", "width": 1},
-            type="line",
-            x0=0,
-            x1=1,
-            xref="x domain",
-            y0=base,
-            y1=base,
-            yref="y",
-        )
-        if profile.barrier > 0:
-            fig.add_annotation(
-                x=t[k],
-                y=top,
-                ax=t[k],
-                ay=base,
-                xref="x",
-                yref="y",
-                axref="x",
-                ayref="y",
-                showarrow=True,
-                arrowhead=2,
-                arrowside="end+start",
-                arrowcolor="#111111",
-                text="",
-            )
-            fig.add_annotation(
-                x=t[k],
-                y=(top + base) / 2,
-                text=f"barrier {profile.barrier:.3g}",
-                showarrow=False,
-                xanchor="left",
-                xshift=8,
-                font={"size": 13},
-                bgcolor="rgba(255,255,255,0.8)",
-            )
-    dist = float(
-        np.linalg.norm(np.asarray(profile.end, np.float64) - np.asarray(profile.start, np.float64))
-    )
-    sub = f"distance between the points {dist:.4g}; barrier {profile.barrier:.4g}"
-    layout = base_layout(title or f"Profile from {labels[0]} to {labels[1]}", sub)
-    layout["margin"]["b"] = 100
-    layout["showlegend"] = False
-    layout["xaxis"] = {"title": {"text": f"t (0 = {labels[0]}, 1 = {labels[1]})"}}
-    layout["yaxis"] = {"title": {"text": "loss"}}
-    fig.update_layout(layout)
-    add_note(
-        fig,
-        "One straight path: a curved path between the points may rise less, so this barrier "
-        "is an upper bound on the lowest barrier between them.",
-    )
-    return fig.figure()

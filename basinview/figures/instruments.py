@@ -30,6 +30,7 @@ from .style import (
     category_colour,
     uid,
 )
+from .text import significant
 
 __all__ = ["curved_path_figure", "density_figure", "trajectory_figure"]
 
@@ -76,8 +77,8 @@ def trajectory_figure(
     )
     custom = np.stack([track.steps, track.loss, track.off_plane], axis=1)
     hover = (
-        "step %{customdata[0]:d}<br>loss %{customdata[1]:.5g}<br>"
-        "off the plane %{customdata[2]:.3g}<extra></extra>"
+        "step %{customdata[0]:d}<br>loss %{customdata[1]:.4~g}<br>"
+        "off the plane %{customdata[2]:.3~g}<extra></extra>"
     )
     line = {"type": "scatter", "x": track.a, "y": track.b, "name": "your run (projected)"}
     fig.add_trace(
@@ -126,7 +127,7 @@ def trajectory_figure(
     off = float(np.max(track.off_plane))
     notes = [
         f"The two directions explain {100 * track.explained_total:.1f}% of the run's variance; "
-        f"largest off-plane distance of a checkpoint {off:.3g} (see hover).",
+        f"largest off-plane distance of a checkpoint {significant(off, 3)} (see hover).",
         f"2-D slice of a {plane.size}-parameter loss: contours are the loss on the plane, "
         "not along the run.",
     ]
@@ -172,8 +173,8 @@ def _add_compared_runs(fig: FigureSpec, runs: Runs, track: TrajectoryPlane) -> N
             "descend(problem, ..., plane=track.plane)."
         )
     hover = (
-        "%{meta}<br>step %{customdata[0]:d}<br>loss %{customdata[1]:.5g}<br>"
-        "off the plane %{customdata[2]:.3g}<extra></extra>"
+        "%{meta}<br>step %{customdata[0]:d}<br>loss %{customdata[1]:.4~g}<br>"
+        "off the plane %{customdata[2]:.3~g}<extra></extra>"
     )
     for r in range(min(len(runs), MAX_COMPARED)):
         last = int(runs.stop_step[r])
@@ -181,7 +182,7 @@ def _add_compared_runs(fig: FigureSpec, runs: Runs, track: TrajectoryPlane) -> N
         steps = np.arange(last + 1)
         custom = np.stack([steps, runs.losses[r, : last + 1], runs.off_plane[r, : last + 1]], 1)
         lr = float(runs.hyper["learning_rate"][r]) if "learning_rate" in runs.hyper else None
-        name = f"basinview {runs.rule}" + (f", lr {lr:.3g}" if lr is not None else "")
+        name = f"basinview {runs.rule}" + (f", lr {significant(lr, 3)}" if lr is not None else "")
         fig.add_trace(
             {
                 "type": "scatter",
@@ -221,8 +222,8 @@ def curved_path_figure(path: CurvedPath, *, title: str | None = None) -> go.Figu
                 "y": loss,
                 "mode": "lines",
                 "line": {"color": colour, "width": 2.5, "dash": dash},
-                "name": f"{name} (barrier {barrier:.3g})",
-                "hovertemplate": f"{name}<br>t %{{x:.3f}}<br>loss %{{y:.6g}}<extra></extra>",
+                "name": f"{name} (barrier {significant(barrier, 3)})",
+                "hovertemplate": f"{name}<br>t %{{x:.3f}}<br>loss %{{y:.4~g}}<extra></extra>",
                 "uid": uid("bend", key),
             }
         )
@@ -235,11 +236,11 @@ def curved_path_figure(path: CurvedPath, *, title: str | None = None) -> go.Figu
                     "y": [float(loss[k])],
                     "mode": "markers+text",
                     "marker": {"size": 10, "color": colour, "symbol": "triangle-up"},
-                    "text": [f"{key} barrier {barrier:.3g}"],
+                    "text": [f"{key} barrier {significant(barrier, 3)}"],
                     "textposition": "top center",
                     "showlegend": False,
                     "name": f"{key} top",
-                    "hovertemplate": f"highest point of the {key}<br>loss %{{y:.6g}}<extra></extra>",
+                    "hovertemplate": f"highest point of the {key}<br>loss %{{y:.4~g}}<extra></extra>",
                     "uid": uid("bend", "top", key),
                 }
             )
@@ -255,8 +256,8 @@ def curved_path_figure(path: CurvedPath, *, title: str | None = None) -> go.Figu
     )
     s = path.summary()
     sub = (
-        f"segment barrier {path.segment_barrier:.4g}, curve barrier {path.barrier:.4g}; "
-        f"lengths {s['length'][0]:.4g} and {s['length'][1]:.4g}"
+        f"segment barrier {significant(path.segment_barrier, 4)}, curve barrier {significant(path.barrier, 4)}; "
+        f"lengths {significant(s['length'][0], 4)} and {significant(s['length'][1], 4)}"
     )
     layout = base_layout(title or "Straight and curved paths between two points", sub)
     layout["xaxis"] = {"title": {"text": "t (0 = start, 1 = end)"}}
@@ -318,7 +319,7 @@ def density_figure(
             "mode": "lines",
             "line": {"color": OKABE_ITO["blue"], "width": 2},
             "name": "eigenvalue density",
-            "hovertemplate": "eigenvalue %{x:.4g}<br>density %{y:.3g} per unit<extra></extra>",
+            "hovertemplate": "eigenvalue %{x:.4~g}<br>density %{y:.3~g} per unit<extra></extra>",
             "uid": uid("density", "curve"),
         }
     )
@@ -334,7 +335,7 @@ def density_figure(
                 "customdata": out[["count", "probes"]].to_numpy(),
                 "name": "outliers",
                 "hovertemplate": (
-                    "outlier %{x:.5g}<br>stands for %{customdata[0]:.2g} eigenvalues<br>"
+                    "outlier %{x:.4~g}<br>stands for %{customdata[0]:.2~g} eigenvalues<br>"
                     "found by %{customdata[1]:d} probes<extra></extra>"
                 ),
                 "uid": uid("density", "outliers"),
@@ -352,13 +353,15 @@ def density_figure(
     )
     mass = density.negative_mass
     se = density.negative_mass_standard_error
-    se_text = f" ± {100 * se:.2g}%" if np.isfinite(se) else ""
+    se_text = f" ± {significant(100 * se, 2)}%" if np.isfinite(se) else ""
     neg_text = (
-        f"mass below zero {100 * mass:.3g}%{se_text} (about {density.negative_count:.3g} of "
+        f"mass below zero {significant(100 * mass, 3)}%{se_text} (about {significant(density.negative_count, 3)} of "
         f"{density.size} eigenvalues)"
     )
     tse = density.trace_standard_error
-    sub = f"{neg_text}; trace ≈ {density.trace:.4g}" + (f" ± {tse:.2g}" if np.isfinite(tse) else "")
+    sub = f"{neg_text}; trace ≈ {significant(density.trace, 4)}" + (
+        f" ± {significant(tse, 2)}" if np.isfinite(tse) else ""
+    )
     layout = base_layout(title or "Hessian eigenvalue density", sub)
     layout["xaxis"] = {"title": {"text": "eigenvalue"}}
     layout["yaxis"] = {
@@ -374,7 +377,7 @@ def density_figure(
     add_note(
         fig,
         f"Stochastic Lanczos quadrature: {s['probes']} probes × {s['steps']} steps, Gaussian "
-        f"smoothing of width {density.width:.3g}; features narrower than that are merged.",
+        f"smoothing of width {significant(density.width, 3)}; features narrower than that are merged.",
     )
     if mass > 0:
         add_note(

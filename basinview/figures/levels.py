@@ -21,6 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..core.errors import ParameterError
+from .text import significant
 
 __all__ = ["LEVEL_MODES", "Levels", "choose_levels"]
 
@@ -81,7 +82,7 @@ def _decade_label(v: float) -> str:
     if float(v).is_integer():
         k = int(v)
         return f"{10.0**k:g}" if -3 <= k <= 3 else f"1e{k}"
-    return f"{10.0**v:.3g}"
+    return significant(10.0**v, 3)
 
 
 def choose_levels(loss: np.ndarray, mode: str = "auto", *, ratio: float = WIDE_RATIO) -> Levels:
@@ -122,6 +123,6 @@ def choose_levels(loss: np.ndarray, mode: str = "auto", *, ratio: float = WIDE_R
             "log-excess",
             shift=lo,
             floor=floor,
-            title=f"loss − min (log scale; min = {lo:.4g})",
+            title=f"loss − min (log scale; min = {significant(lo)})",
         )
     return Levels("linear")

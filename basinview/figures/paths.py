@@ -23,7 +23,17 @@ import numpy as np
 from ..core.descent import Runs
 from ..core.errors import ParameterError
 from ..core.minima import DIVERGED_LABEL, MAX_STEPS_LABEL, NOT_STATIONARY_LABEL
-from .style import CATEGORY_COLOURS, DIVERGED, MAX_STEPS, NOT_STATIONARY, category_colour
+from ..core.runs import oscillation_measures
+from .style import (
+    DISTINCT_COLOURS,
+    DIVERGED,
+    LEGEND_LIMIT,
+    MAX_STEPS,
+    NOT_STATIONARY,
+    category_colour,
+    colour_round,
+)
+from .text import significant
 
 __all__ = [
     "COLOR_BY",
@@ -33,7 +43,11 @@ __all__ = [
     "colour_note",
     "draw_indices",
     "group_runs",
+    "legend_groups",
+    "legend_summary",
+    "percent",
     "select_runs",
+    "settled",
     "stack_paths",
 ]
 
@@ -42,7 +56,7 @@ COLOR_BY = ("auto", "minimum", "learning_rate", "start", "status")
 #: Group keys of runs that reached no critical point (one per outcome label).
 OUTCOME_KEYS = ("max_steps", "not-stationary", "diverged")
 
-#: End-marker shapes of the first, second, ... round of the seven category colours.
+#: End-marker shapes of the first, second, ... round of the 21 distinct category colours.
 CYCLE_SYMBOLS = ("circle", "square", "diamond", "triangle-up", "pentagon")
 
 
@@ -50,16 +64,85 @@ def colour_note(groups: list[PathGroup]) -> str:
     """A note for figures where groups share a colour (empty otherwise).
 
     Points keep their registry colour, so two points can share one (the 1st
-    and 8th registered, say) even when few are drawn.
+    and 22nd registered, say) even when few are drawn.
     """
     cats = [g for g in groups if g.key not in OUTCOME_KEYS]
     colours = len({g.colour for g in cats})
     if colours == len(cats):
         return ""
     return (
-        f"{len(cats)} groups share {colours} colours: after every seven the end-marker "
-        "shape changes (circle, square, diamond, ...); hover or the legend tells them apart."
+        f"{len(cats)} groups share {colours} colours: after every {DISTINCT_COLOURS} the "
+        "end-marker shape changes (circle, square, diamond, ...); hover or the legend tells "
+        "them apart."
     )
+
+
+def settled(runs: Runs, members: np.ndarray) -> np.ndarray:
+    """Which of ``members`` converged without oscillating (drawn bold; the rest faint).
+
+    A run counts as oscillating by the measure of the runs table
+    (:func:`~basinview.core.runs.oscillation_measures`: the loss alternates up
+    and down, or successive gradients point against each other, in at least
+    half the steps of the run's later half).
+    """
+    members = np.asarray(members, dtype=int)
+    status = np.asarray(runs.status)[members]
+    out = status == "converged"
+    for i in np.flatnonzero(out):
+        r = int(members[i])
+        alt, rev = oscillation_measures(runs.losses[r], runs.cosines[r], int(runs.stop_step[r]))
+        out[i] = max(alt, rev) < 0.5
+    return out
+
+
+def legend_groups(groups: list[PathGroup], limit: int = LEGEND_LIMIT) -> set[str]:
+    """Keys of the groups the legend names: the ``limit`` largest categories and every outcome.
+
+    Outcome groups (``max_steps``, ``not stationary``, ``diverged``) are always
+    named; of the others the largest (most runs before any cap; ties in
+    drawing order) are named, the rest summed up by :func:`legend_summary`.
+    """
+    if isinstance(limit, bool) or not isinstance(limit, (int, np.integer)) or limit < 1:
+        raise ParameterError(f"legend_limit must be a positive integer; got {limit!r}.")
+    cats = [g for g in groups if g.key not in OUTCOME_KEYS]
+    order = sorted(range(len(cats)), key=lambda i: -cats[i].total)
+    # one line summing up a single group saves nothing: name it instead
+    keep = {cats[i].key for i in order[: limit + 1 if len(cats) == limit + 1 else limit]}
+    return keep | {g.key for g in groups if g.key in OUTCOME_KEYS}
+
+
+def legend_summary(
+    rest: int, share: float | None, *, noun: str = "groups", of: str = "runs"
+) -> str:
+    """The legend line standing for groups the legend does not name.
+
+    ``noun`` is plural; one group drops its final "s".
+
+    Examples:
+        >>> legend_summary(17, 0.3123, noun="basins", of="starts")
+        '+ 17 more basins (31% of starts)'
+        >>> legend_summary(1, 0.004)
+        '+ 1 more group (<1% of runs)'
+    """
+    word = noun[:-1] if rest == 1 and noun.endswith("s") else noun
+    if share is None:
+        return f"+ {rest} more {word}"
+    return f"+ {rest} more {word} ({percent(share)} of {of})"
+
+
+def percent(share: float) -> str:
+    """A share as a percentage for legends: whole percents, ``<1%`` for small non-zero shares.
+
+    Examples:
+        >>> percent(0.3123), percent(0.004), percent(0.0), percent(0.9996)
+        ('31%', '<1%', '0%', '>99%')
+    """
+    pct = 100 * float(share)
+    if 0 < pct < 0.5:
+        return "<1%"
+    if 99.5 <= pct < 100:
+        return ">99%"
+    return f"{pct:.0f}%"
 
 
 @dataclass(frozen=True)
@@ -105,7 +188,7 @@ def _candidates(runs: Runs, which: Any) -> np.ndarray:
 
 
 def _fmt(x: float) -> str:
-    return f"{x:.3g}"
+    return significant(x, 3)
 
 
 def group_runs(
@@ -143,9 +226,9 @@ def group_runs(
     groups: list[PathGroup] = []
 
     def add(key: str, name: str, members: np.ndarray, k: int) -> None:
-        # colours repeat after seven categories; the end-marker shape then changes
+        # colours repeat after 21 categories; the end-marker shape then changes
         if members.size:
-            symbol = CYCLE_SYMBOLS[(k // len(CATEGORY_COLOURS)) % len(CYCLE_SYMBOLS)]
+            symbol = CYCLE_SYMBOLS[colour_round(k) % len(CYCLE_SYMBOLS)]
             groups.append(
                 PathGroup(
                     key, name, category_colour(k), "solid", symbol, members, int(members.size)
@@ -175,7 +258,8 @@ def group_runs(
             )
         labels = list(minima.labels)
         colours = np.asarray(minima.colour_index)
-        for k in range(len(labels)):
+        # letter order: the registry's order, whatever order this result lists points in
+        for k in np.argsort(colours, kind="stable"):
             kind = str(minima.kind[k])
             name = f"{labels[k]}: {kind}, loss {_fmt(float(minima.loss[k]))}"
             cid = int(colours[k])

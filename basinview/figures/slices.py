@@ -24,8 +24,25 @@ from .overlays import (
     add_paths,
     check_runs_plane,
 )
-from .paths import colour_note, group_runs, select_runs, stack_paths
-from .style import SURFACE_SCALE, add_note, base_layout, colour_scale, uid
+from .paths import (
+    colour_note,
+    group_runs,
+    legend_groups,
+    legend_summary,
+    select_runs,
+    settled,
+    stack_paths,
+)
+from .style import (
+    LEGEND_LIMIT,
+    SURFACE_SCALE,
+    UNCONVERGED,
+    add_note,
+    base_layout,
+    colour_scale,
+    uid,
+)
+from .text import significant
 
 __all__ = ["relief_figure", "slice_caution", "slice_figure"]
 
@@ -44,7 +61,8 @@ def slice_caution(plane: Plane, runs: Runs | None = None, drawn: np.ndarray | No
         off = np.asarray(runs.off_plane)[tame]
         if np.isfinite(off).any():
             text += (
-                f" Paths leave the plane (largest off-plane distance {float(np.nanmax(off)):.3g}"
+                " Paths leave the plane (largest off-plane distance "
+                f"{significant(float(np.nanmax(off)), 3)}"
                 + (" among runs that did not diverge" if tame.size < members.size else "")
                 + "; see hover)."
             )
@@ -92,8 +110,8 @@ def contour_trace(
         "line": {"width": 0.6, "color": "rgba(255,255,255,0.45)"},
         "colorbar": _colourbar(levels, z),
         "hovertemplate": (
-            f"{titles[0]} %{{x:.4g}}<br>{titles[1]} %{{y:.4g}}"
-            "<br>loss %{customdata:.5g}<extra></extra>"
+            f"{titles[0]} %{{x:.4~g}}<br>{titles[1]} %{{y:.4~g}}"
+            "<br>loss %{customdata:.4~g}<extra></extra>"
         ),
         "name": name,
         "uid": uid_,
@@ -110,6 +128,7 @@ def slice_figure(
     levels: str = "auto",
     max_paths: int = 60,
     max_points: int = 300,
+    legend_limit: int = LEGEND_LIMIT,
     title: str | None = None,
 ) -> go.Figure:
     """Contour map of a surface with descent paths drawn on it.
@@ -131,7 +150,10 @@ def slice_figure(
             decades or more), ``"linear"`` or ``"log"``.
         max_paths: at most this many paths are drawn; the figure says how many
             were left out.
-        max_points: longer paths are thinned to about this many points for drawing.
+        max_points: longer paths are thinned to about this many points for drawing
+            (runs that did not converge to a quarter of that, drawn fainter).
+        legend_limit: the legend names at most this many groups (the largest)
+            and sums up the rest in one entry.
         title: figure title.
 
     Returns:
@@ -153,7 +175,7 @@ def slice_figure(
         groups, left_out = select_runs(
             group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
         )
-        add_paths(fig, runs, groups, bounds, max_points)
+        add_paths(fig, runs, groups, bounds, max_points, legend_limit=legend_limit)
         drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
         if left_out:
             notes.append(
@@ -204,6 +226,7 @@ def relief_figure(
     levels: str = "auto",
     max_paths: int = 30,
     max_points: int = 200,
+    legend_limit: int = LEGEND_LIMIT,
     title: str | None = None,
 ) -> go.Figure:
     """3-D surface of the loss over the slice, with descent paths draped on it.
@@ -233,8 +256,8 @@ def relief_figure(
                 "z": {"show": True, "usecolormap": True, "project": {"z": False}, "width": 1}
             },
             "hovertemplate": (
-                f"{plane.axis_titles[0]} %{{x:.4g}}<br>{plane.axis_titles[1]} %{{y:.4g}}"
-                "<br>loss %{z:.5g}<extra></extra>"
+                f"{plane.axis_titles[0]} %{{x:.4~g}}<br>{plane.axis_titles[1]} %{{y:.4~g}}"
+                "<br>loss %{z:.4~g}<extra></extra>"
             ),
             "name": "loss",
             "uid": uid("relief", "surface"),
@@ -249,9 +272,12 @@ def relief_figure(
             group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
         )
         box = (surface.a[0], surface.a[-1], surface.b[0], surface.b[-1], zlo, zhi * 1.05)
+        shown = legend_groups(groups, legend_limit)
         for g in groups:
             s = stack_paths(runs, g.runs, max_points=max_points, with_z=True)
             x, y, zz = _clip_box(s["x"], s["y"], s["z"], box, log_z)
+            # a group none of whose runs settled is drawn faint and thin, as on the slice
+            faint = not np.any(settled(runs, g.runs))
             fig.add_trace(
                 {
                     "type": "scatter3d",
@@ -261,9 +287,27 @@ def relief_figure(
                     "customdata": s["custom"],
                     "mode": "lines",
                     "name": g.name,
-                    "line": {"color": g.colour, "width": 5, "dash": g.dash},
+                    "showlegend": g.key in shown,
+                    "opacity": UNCONVERGED["opacity"] if faint else 1.0,
+                    "line": {"color": g.colour, "width": 2 if faint else 5, "dash": g.dash},
                     "hovertemplate": PATH_HOVER,
                     "uid": uid("relief", "path", g.key),
+                }
+            )
+        hidden = [g for g in groups if g.key not in shown]
+        if hidden:
+            share = sum(g.total for g in hidden) / max(sum(g.total for g in groups), 1)
+            fig.add_trace(
+                {
+                    "type": "scatter3d",
+                    "x": [None],
+                    "y": [None],
+                    "z": [None],
+                    "mode": "lines",
+                    "name": legend_summary(len(hidden), share),
+                    "line": {"color": "rgba(0,0,0,0)"},
+                    "hoverinfo": "skip",
+                    "uid": uid("relief", "legend-rest"),
                 }
             )
         if left_out:

@@ -31,16 +31,21 @@ from .build import FigureSpec
 
 __all__ = [
     "CATEGORY_COLOURS",
+    "DISTINCT_COLOURS",
     "DIVERGED",
+    "LEGEND_LIMIT",
     "MAX_STEPS",
     "NOT_STATIONARY",
     "OKABE_ITO",
     "OUTCOME_STYLES",
     "SURFACE_SCALE",
+    "UNCONVERGED",
     "add_note",
     "base_layout",
     "category_colour",
+    "colour_round",
     "colour_scale",
+    "mix",
     "uid",
 ]
 
@@ -114,14 +119,61 @@ _INK = "#2B2B2B"
 _NOTE = "#5A5A5A"
 
 
+#: Share of black mixed into the second round of category colours, and of white into the
+#: third: the same seven hues, darker then lighter, so that up to 21 categories (critical
+#: points, basins) get distinct colours and a reader with a colour-vision deficiency still
+#: has the lightness step to go by.
+_ROUND_MIX = ((None, 0.0), ("#000000", 0.4), ("#FFFFFF", 0.5))
+
+#: How many categories get a colour of their own before colours repeat.
+DISTINCT_COLOURS = len(CATEGORY_COLOURS) * len(_ROUND_MIX)
+
+#: Legends name at most this many groups (the largest; the rest are summed up in one entry).
+LEGEND_LIMIT = 10
+
+#: Drawing of runs that did not converge (spent their budget, oscillated, or are not
+#: stationary at the end): fainter, thinner and with fewer points than converged runs, and
+#: no white casing, so that a run zig-zagging across the view leaves the contours readable.
+UNCONVERGED = {"opacity": 0.4, "width": 1.0, "point_share": 0.25}
+
+
+def mix(colour: str, other: str, share: float) -> str:
+    """``colour`` with ``share`` (0 to 1) of ``other`` mixed in, as ``#RRGGBB``.
+
+    Examples:
+        >>> mix("#D55E00", "#FFFFFF", 0.5), mix("#0072B2", "#000000", 0.0)
+        ('#EAAE80', '#0072B2')
+    """
+    c = [int(colour[i : i + 2], 16) for i in (1, 3, 5)]
+    o = [int(other[i : i + 2], 16) for i in (1, 3, 5)]
+    return "#" + "".join(f"{round(a + share * (b - a)):02X}" for a, b in zip(c, o))
+
+
+def colour_round(i: int) -> int:
+    """How many full rounds of distinct colours came before category ``i`` (0 for the first 21)."""
+    return int(i) // DISTINCT_COLOURS
+
+
 def category_colour(i: int) -> str:
-    """Colour of category ``i`` (cycles after seven categories).
+    """Colour of category ``i``: distinct for the first 21 categories, then cycling.
+
+    Categories 0-6 take the seven colours of :data:`CATEGORY_COLOURS`, 7-13
+    the same hues darker, 14-20 lighter; from 21 on the colours repeat
+    (figures then change the marker shape and say so, and basin maps write
+    each basin's letter on it).
 
     For critical points ``i`` is the point's colour index in the problem's
     registry (``Minima.colour_index``), so a point keeps its colour in every
     figure.
+
+    Examples:
+        >>> category_colour(0), category_colour(7), category_colour(14), category_colour(21)
+        ('#D55E00', '#803800', '#EAAE80', '#D55E00')
     """
-    return CATEGORY_COLOURS[i % len(CATEGORY_COLOURS)]
+    k = int(i) % DISTINCT_COLOURS
+    base = CATEGORY_COLOURS[k % len(CATEGORY_COLOURS)]
+    other, share = _ROUND_MIX[k // len(CATEGORY_COLOURS)]
+    return base if other is None else mix(base, other, share)
 
 
 def colour_scale(name: str) -> list[list[Any]]:
