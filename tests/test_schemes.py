@@ -268,3 +268,12 @@ def test_scheme_figures_validate_and_show_the_table(himmel):
     steps = cmp.steps_to_loss
     assert sum(len(t.x) for t in hit) == int((~steps.isna()).sum())
     assert F.scheme_colours(cmp)[cmp.schemes[0]] == shares_fig.data[0].marker.color
+
+
+def test_top_eigenvalue_on_a_network_against_eigh(mlp):
+    prob, _ = mlp
+    points = random_starts(prob, MLP_RUNS, scale=0.7, seed=11).points  # same bucket as above
+    got = top_hessian_eigenvalues(prob, points, iterations=300)
+    # Source: numpy.linalg.eigvalsh of the dense Hessian (jax.hessian) at each point.
+    want = [np.linalg.eigvalsh(core.hessian_matrix(prob, p)).max() for p in points[:6]]
+    np.testing.assert_allclose(got[:6], want, rtol=1e-3)

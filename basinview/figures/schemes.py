@@ -199,6 +199,7 @@ def scheme_steps_figure(
             yaxis={
                 "title": {"text": "final loss (log scale)" if logy else "final loss"},
                 "type": "log" if logy else "linear",
+                **({"dtick": "D2"} if logy else {}),
             },
             legend={"title": {"text": "scheme"}},
         )
