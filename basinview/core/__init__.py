@@ -111,6 +111,10 @@ from .surface import (
 )
 from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 from .view import ViewSpec, upgrade_settings
+from .cluster import Cluster, cluster_from_env, start_cluster
+from .distributed import analyse_shared, shared_basin_map, shared_runs, shared_surface
+from .errors import ClusterError, ResultsFileError
+from .results import load_results, save_results
 
 __all__ = [
     "ADAM",
@@ -224,4 +228,16 @@ __all__ = [
     "upgrade_record",
     "upgrade_settings",
     "use_all_cores",
+    # runs over several processes (core/cluster.py, core/distributed.py) and results files
+    "Cluster",
+    "ClusterError",
+    "ResultsFileError",
+    "analyse_shared",
+    "cluster_from_env",
+    "load_results",
+    "save_results",
+    "shared_basin_map",
+    "shared_runs",
+    "shared_surface",
+    "start_cluster",
 ]
