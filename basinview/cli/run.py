@@ -126,10 +126,10 @@ def _compute(args: argparse.Namespace, cluster: Any) -> int:
             raise
         error = " ".join(str(exc).split())
     digest_settings = prepared[2] if prepared else ""
-    agree(cluster, "reading the settings and overrides", digest_settings, error)
+    agree(cluster, "reading the inputs", digest_settings, error, held="settings and overrides")
     assert prepared is not None
     problem, view, _, fingerprint = prepared
-    agree(cluster, "reading the parameters and data", fingerprint)
+    agree(cluster, "comparing the inputs", fingerprint, held="parameters and data")
     tag = f"process {cluster.process_id} of {cluster.process_count}"
     print(f"basinview run: {tag}, {len(jax.local_devices())} device(s) here, "
           f"{len(jax.devices())} in all", flush=True)  # fmt: skip
@@ -157,6 +157,7 @@ def _compute(args: argparse.Namespace, cluster: Any) -> int:
 def run_command(args: argparse.Namespace) -> int:
     """The ``run`` subcommand (see the module docstring)."""
     from ..core import cluster_from_env, start_cluster, use_all_cores
+    from ..core.cluster import barrier
 
     cluster = cluster_from_env()
     if args.devices is not None:
@@ -167,6 +168,9 @@ def run_command(args: argparse.Namespace) -> int:
     if cluster.process_count == 1:
         return _compute(args, cluster)
     try:
+        # A first collective connects every pair of processes: from here on, a process
+        # that exits is noticed by the others as soon as they wait for it.
+        barrier(cluster, "joining the run")
         return _compute(args, cluster)
     except (BasinviewError, Exception) as exc:
         # Skip JAX's exit handlers: with a peer gone, its shutdown barrier aborts the

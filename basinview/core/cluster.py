@@ -213,12 +213,13 @@ def _encode(text: str) -> np.ndarray:
     return np.frombuffer(raw.ljust(_MESSAGE_BYTES, b"\0"), dtype=np.uint8).copy()
 
 
-def agree(cluster: Cluster, what: str, digest: str, error: str = "") -> None:
+def agree(cluster: Cluster, what: str, digest: str, error: str = "", *, held: str = "") -> None:
     """Check that every process holds the same ``digest`` and none reports an ``error``.
 
     Every process calls it at the same point; all raise the same
     :class:`ClusterError` if any process failed (naming it and its message)
-    or if the digests differ (naming the processes that disagree with process 0).
+    or if the digests differ (naming the processes that disagree with process 0 about
+    ``held``, e.g. "settings").
     """
     if cluster.process_count == 1:
         if error:
@@ -244,7 +245,8 @@ def agree(cluster: Cluster, what: str, digest: str, error: str = "") -> None:
     differ = [p for p in range(1, every.shape[0]) if not np.array_equal(every[p, 1:33], every[0, 1:33])]
     if differ:
         raise ClusterError(
-            f"processes {differ} hold other {what} than process 0 (fingerprints differ); "
+            f"processes {differ} hold other {held or 'inputs'} than process 0 (fingerprints "
+            "differ); "
             "every process must be started with the same settings file, overrides, parameters "
             "and data. Copy the same files to every host and start the run again."
         )
