@@ -188,9 +188,14 @@ def test_a_process_that_dies_stops_the_other_with_a_clear_error(runs):
     folder, out, _problem = runs
     first, second = out["dies"]
     assert second["rc"] == 17
-    assert first["rc"] == 3, first["err"][-2000:]
-    assert "lost contact with another process" in first["err"]
-    assert "No results were written" in first["err"]
+    if first["rc"] == 3:
+        # process 0 was waiting for process 1: the collective failed, and we say so
+        assert "lost contact with another process" in first["err"]
+        assert "No results were written" in first["err"]
+    else:
+        # process 0 was computing: JAX's heartbeat check ended it (SIGABRT) with its message
+        assert first["rc"] in (-6, 134), first["err"][-2000:]
+        assert "another task died" in first["err"]
     # bounded: the survivor stopped within seconds of the death, not at a timeout
     assert first["ended"] - second["ended"] < 30
     assert not (folder / "dies.npz").exists()
