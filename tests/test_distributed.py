@@ -26,7 +26,7 @@ from basinview.core.results import results_header
 
 ROOT = Path(__file__).resolve().parents[1]
 
-LOSS_MODULE = '''
+LOSS_MODULE = """
 import os
 import jax.numpy as jnp
 
@@ -37,7 +37,7 @@ def loss(params, x, y):
         os._exit(17)
     r = x @ params["w"] + params["b"] - y
     return jnp.mean(r * r)
-'''
+"""
 RUN = [
     "view.json", "--module", "lsq:loss", "--params", "params.json", "--data", "data.npz",
     "--resolution", "13", "--starts", "24", "--steps", "300", "--basin-resolution", "7",
@@ -61,7 +61,9 @@ def _diabetes() -> tuple[np.ndarray, np.ndarray]:
     return x, y
 
 
-def _launch(folder: Path, out: str, env: dict[str, str], extra: tuple[str, ...] = ()) -> subprocess.Popen:
+def _launch(
+    folder: Path, out: str, env: dict[str, str], extra: tuple[str, ...] = ()
+) -> subprocess.Popen:
     full = {**os.environ, "PYTHONPATH": str(ROOT), "BASINVIEW_HEARTBEAT_SECONDS": "3", **env}
     for name in ("JAX_NUM_CPU_DEVICES", "XLA_FLAGS"):
         full.pop(name, None)

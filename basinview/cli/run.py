@@ -46,7 +46,10 @@ RUN_OPTIONS: tuple[tuple[str, dict[str, Any]], ...] = (
     ("--out", {"required": True, "metavar": "RESULTS.npz", "help": "results file (process 0)"}),
     ("--force", {"action": "store_true", "help": "replace an existing results file"}),
     ("--resolution", {"type": int, "help": "surface grid points per axis (default: recorded)"}),
-    ("--starts", {"type": int, "help": "number of random or initialiser starts (default: recorded)"}),
+    (
+        "--starts",
+        {"type": int, "help": "number of random or initialiser starts (default: recorded)"},
+    ),
     ("--steps", {"type": int, "help": "step budget per run (default: recorded)"}),
     ("--basin-resolution", {"type": int, "default": 0, "help": "basin map grid; 0 skips (0)"}),
     ("--basin-rate", {"type": float, "help": "basin map learning rate (default: the lowest)"}),
@@ -133,15 +136,18 @@ def _compute(args: argparse.Namespace, cluster: Any) -> int:
     tag = f"process {cluster.process_id} of {cluster.process_count}"
     print(f"basinview run: {tag}, {len(jax.local_devices())} device(s) here, "
           f"{len(jax.devices())} in all", flush=True)  # fmt: skip
+    stages: dict[str, float] = {"prepare": round(time.perf_counter() - started, 4)}
     analysis = analyse_shared(
-        problem, view, cluster, basin_resolution=args.basin_resolution, basin_rate=args.basin_rate
-    )
+        problem, view, cluster, basin_resolution=args.basin_resolution,
+        basin_rate=args.basin_rate, timings=stages,
+    )  # fmt: skip
     error = ""
     if cluster.is_writer:
         facts = {
             "processes": cluster.process_count,
             "devices": len(jax.devices()),
             "seconds": round(time.perf_counter() - started, 3),
+            "stages": stages,
         }
         try:
             path = save_results(args.out, analysis, problem, run=facts)

@@ -184,28 +184,39 @@ def _collective(what: str, fn: Callable[[], T]) -> T:
         ) from None
 
 
-def gather_rows(cluster: Cluster, local: Mapping[str, np.ndarray], what: str) -> dict[str, np.ndarray]:
+def gather_rows(
+    cluster: Cluster, local: Mapping[str, np.ndarray], what: str
+) -> dict[str, np.ndarray]:
     """Every process's rows of each array, concatenated in process order (on every process).
 
-    Arrays may have different lengths per process (axis 0); they are padded
-    to the longest for the collective and trimmed after.
+    Arrays may have different lengths per process (axis 0) but the same
+    dtype and trailing shape. All of them travel as one byte buffer, so a
+    gather is two collectives (the row counts, then the padded buffers)
+    whatever the number of arrays.
     """
     if cluster.process_count == 1:
         return {k: np.asarray(v) for k, v in local.items()}
     from jax.experimental import multihost_utils
 
     names = sorted(local)
-    rows = np.array([np.asarray(local[k]).shape[0] for k in names], dtype=np.int64)
+    arrays = [np.ascontiguousarray(local[k]) for k in names]
+    rows = np.array([a.shape[0] for a in arrays] + [sum(a.nbytes for a in arrays)], np.int64)
     counts = _collective(what, lambda: np.asarray(multihost_utils.process_allgather(rows)))
-    out: dict[str, np.ndarray] = {}
-    for j, name in enumerate(names):
-        arr = np.asarray(local[name])
-        longest = int(counts[:, j].max())
-        pad = np.zeros((longest - arr.shape[0], *arr.shape[1:]), arr.dtype)
-        full = np.concatenate([arr, pad]) if pad.shape[0] else arr
-        stacked = _collective(what, lambda f=full: np.asarray(multihost_utils.process_allgather(f)))
-        out[name] = np.concatenate([stacked[p, : counts[p, j]] for p in range(stacked.shape[0])])
-    return out
+    longest = int(counts[:, -1].max())
+    buffer = np.zeros(longest, np.uint8)
+    if arrays:
+        raw = np.concatenate([a.reshape(-1).view(np.uint8) for a in arrays])
+        buffer[: raw.size] = raw
+    every = _collective(what, lambda: np.asarray(multihost_utils.process_allgather(buffer)))
+    parts: dict[str, list[np.ndarray]] = {k: [] for k in names}
+    for p in range(every.shape[0]):
+        at = 0
+        for j, (name, a) in enumerate(zip(names, arrays)):
+            shape = (int(counts[p, j]), *a.shape[1:])
+            size = int(np.prod(shape)) * a.dtype.itemsize
+            parts[name].append(every[p, at : at + size].view(a.dtype).reshape(shape))
+            at += size
+    return {k: np.concatenate(v) for k, v in parts.items()}
 
 
 def _encode(text: str) -> np.ndarray:
@@ -239,10 +250,10 @@ def agree(cluster: Cluster, what: str, digest: str, error: str = "", *, held: st
     if failed:
         p = failed[0]
         message = bytes(every[p, 33:]).rstrip(b"\0").decode("utf-8", "replace")
-        raise ClusterError(
-            f"process {p} of {cluster.process_count} failed while {what}: {message}"
-        )
-    differ = [p for p in range(1, every.shape[0]) if not np.array_equal(every[p, 1:33], every[0, 1:33])]
+        raise ClusterError(f"process {p} of {cluster.process_count} failed while {what}: {message}")
+    differ = [
+        p for p in range(1, every.shape[0]) if not np.array_equal(every[p, 1:33], every[0, 1:33])
+    ]
     if differ:
         raise ClusterError(
             f"processes {differ} hold other {held or 'inputs'} than process 0 (fingerprints "

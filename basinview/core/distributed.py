@@ -20,6 +20,7 @@ rows that will never come.
 from __future__ import annotations
 
 import dataclasses
+import time
 from collections.abc import Callable, Mapping
 from typing import Any, TypeVar
 
@@ -47,6 +48,19 @@ from .view import ViewSpec
 __all__ = ["analyse_shared", "shared_basin_map", "shared_runs", "shared_surface"]
 
 T = TypeVar("T")
+
+
+class _Clock:
+    """Seconds since the previous call, stored under each stage's name."""
+
+    def __init__(self, into: dict[str, float] | None) -> None:
+        self.into, self.last = into, time.perf_counter()
+
+    def __call__(self, stage: str) -> None:
+        now = time.perf_counter()
+        if self.into is not None:
+            self.into[stage] = round(now - self.last, 4)
+        self.last = now
 
 
 def _local(cluster: Cluster, what: str, fn: Callable[[], T]) -> T:
@@ -85,7 +99,11 @@ def shared_surface(
     aa, bb = np.meshgrid(a, b)
     ab = np.stack([aa.ravel(), bb.ravel()], axis=1).astype(problem.dtype)
     total = ab.shape[0]
-    chunk = int(sizes["surface_chunk"]) if sizes and "surface_chunk" in sizes else chunk_size_for(problem)
+    chunk = (
+        int(sizes["surface_chunk"])
+        if sizes and "surface_chunk" in sizes
+        else chunk_size_for(problem)
+    )
     lo, hi = unit_share(-(-total // chunk), cluster)
     plo, phi = min(lo * chunk, total), min(hi * chunk, total)
 
@@ -191,7 +209,9 @@ def shared_runs(
     local = _local(cluster, "running descent", compute)
     every = gather_rows(cluster, local, "gathering the runs")
     names = sorted({key.split(":", 1)[1] for key in every})
-    joined = {n: np.concatenate([every[f"{k:04d}:{n}"] for k in range(len(settings))]) for n in names}
+    joined = {
+        n: np.concatenate([every[f"{k:04d}:{n}"] for k in range(len(settings))]) for n in names
+    }
     joined["status"] = np.asarray(STATUSES, dtype=object)[joined["status"].astype(np.int64)]
     known = {f.name for f in dataclasses.fields(Runs)}
     return Runs(
@@ -256,17 +276,21 @@ def analyse_shared(
     basin_rate: float | None = None,
     minima: bool = True,
     profile: bool = True,
+    timings: dict[str, float] | None = None,
 ) -> Analysis | None:
     """:func:`~basinview.core.analyse` of ``view`` (surface, runs, basin map) over the processes.
 
     Process 0 returns the :class:`Analysis` (minima and the profile between
     the two lowest minima found on it, from all the runs); the others None.
-    No step-size sweep.
+    No step-size sweep. ``timings``, if given, receives the seconds of each
+    stage (``surface``, ``runs``, ``basin_map``, ``minima``) on this process.
     """
+    clock = _Clock(timings)
     surface = shared_surface(
         problem, view.plane, cluster, span=view.span, resolution=view.resolution,
         sizes=view.sizes,
     )  # fmt: skip
+    clock("surface")
     runs = shared_runs(
         problem, view.starts, cluster, optimizer=view.optimizer,
         learning_rate=list(view.learning_rate), hyper={k: list(v) for k, v in view.hyper.items()},
@@ -274,6 +298,7 @@ def analyse_shared(
         divergence_factor=view.divergence_factor, batch_size=view.batch_size, seed=view.seed,
         sizes=view.sizes,
     )  # fmt: skip
+    clock("runs")
     basins = None
     if basin_resolution:
         rate = basin_rate if basin_rate is not None else min(view.learning_rate)
@@ -283,10 +308,12 @@ def analyse_shared(
             hyper=view.single_hyper(None, "a basin map"), steps=view.steps,
             grad_tol=view.grad_tol, loss_tol=view.loss_tol,
         )  # fmt: skip
+        clock("basin_map")
     if not cluster.is_writer:
         return None
     found = compute_minima(problem, runs) if minima else None
     seg = compute_profile(problem, found) if profile else None
+    clock("minima")
     return Analysis(
         settings=record_view(problem, view, runs, surface=surface),
         plane=view.plane,

@@ -83,7 +83,9 @@ def _pack(value: Any, name: str, arrays: dict[str, np.ndarray]) -> Any:
         return value.item()
     if value is None or isinstance(value, (bool, int, float, str)):
         return value
-    raise ResultsFileError(f"{name} holds a {type(value).__name__}, which a results file cannot hold.")
+    raise ResultsFileError(
+        f"{name} holds a {type(value).__name__}, which a results file cannot hold."
+    )
 
 
 def save_results(
@@ -246,13 +248,10 @@ def load_results(path: str | os.PathLike[str], *, problem: Problem | None = None
         settings = Settings.from_json(json.dumps(header["settings"]))
     parts = {k: _unpack(v, arrays, k) for k, v in header.get("parts", {}).items() if k in _PARTS}
     labels = header.get("profile_labels")
-    return Analysis(
-        settings=settings, profile_labels=tuple(labels) if labels else None, **parts
-    )
+    return Analysis(settings=settings, profile_labels=tuple(labels) if labels else None, **parts)
 
 
 def results_header(path: str | os.PathLike[str]) -> dict[str, Any]:
     """The JSON header of a results file (format, fingerprints, settings, run facts)."""
     with np.load(Path(path), allow_pickle=False) as npz:
         return dict(json.loads(bytes(npz["header"]).decode("utf-8")))
-
