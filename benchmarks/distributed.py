@@ -143,6 +143,63 @@ def _gathered_bytes(folder: Path, name: str, starts: int) -> float:
     return total / starts
 
 
+def estimate(
+    measured: dict[str, Any],
+    *,
+    starts: int = 1_000_000,
+    machines: int = 16,
+    cores: int = 2,
+    bandwidth: float = 1.25e9,
+) -> dict[str, Any]:
+    """Seconds and bytes of a basin map of ``starts`` starts on ``machines`` machines.
+
+    A simulation from this benchmark's measurements, not a run: compute is the
+    measured seconds per start on one device, divided over ``machines x cores``
+    devices at the measured two-device efficiency; the gather is the measured
+    bytes per start, of which every process receives the others' share
+    (``process_allgather``) over links of ``bandwidth`` bytes/s (10 Gbit/s
+    Ethernet by default); process 0 then finds the critical points at the measured
+    seconds per run and writes the file. Fixed costs (start-up, compilation) are
+    the one-process run's seconds minus its basin-map stage.
+    """
+    per_start = measured["basin_map_seconds"]["one"] / measured["workload"]["starts"]
+    efficiency = min(1.0, measured["speedup_two_devices"] / 2)
+    devices = machines * cores
+    compute = starts * per_start / (devices * efficiency)
+    volume = starts * measured["gathered_bytes_per_start"]
+    gather = volume * (machines - 1) / machines / bandwidth
+    minima = starts * measured.get("minima_seconds_per_run", 0.0)
+    fixed = measured["seconds"]["one"] - measured["basin_map_seconds"]["one"]
+    return {
+        "starts": starts,
+        "machines": machines,
+        "cores_per_machine": cores,
+        "bandwidth_bytes_per_s": bandwidth,
+        "compute_seconds": compute,
+        "gathered_bytes": volume,
+        "gather_seconds": gather,
+        "minima_seconds_on_process_0": minima,
+        "fixed_seconds": fixed,
+        "total_seconds": fixed + compute + gather + minima,
+        "one_machine_seconds": fixed + starts * per_start / (cores * efficiency) + minima,
+        "memory_per_process_bytes": volume,
+    }
+
+
+def _minima_seconds_per_run(folder: Path, name: str, rows: int) -> float:
+    """Seconds per run of finding the critical points of a results file's basin map."""
+    import basinview.core as bv
+    from benchmarks.workloads import mlp_data, mlp_init, mlp_loss
+
+    data = mlp_data(rows)
+    problem = bv.Problem(mlp_loss, mlp_init(0), data.x, data.y, name="bench_mlp:loss")
+    runs = bv.load_results(folder / name).basin_map.runs
+    bv.find_minima(problem, runs)  # compiles
+    t0 = time.perf_counter()
+    bv.find_minima(problem, runs)
+    return (time.perf_counter() - t0) / len(runs)
+
+
 def main(argv: list[str] | None = None) -> dict[str, Any]:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="tiny sizes (smoke run)")
@@ -167,6 +224,7 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
         identical = _same(folder, files)
         starts = args.resolution**2
         per_start_bytes = _gathered_bytes(folder, files[0], starts)
+        minima_per_run = _minima_seconds_per_run(folder, files[0], args.rows)
     load_end = os.getloadavg()
 
     def median(kind: str, key: str) -> float:
@@ -198,8 +256,11 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
         "per_start_cpu_seconds": median("one", "cpu") / starts,
         "per_start_seconds_one_device": one / starts,
         "gathered_bytes_per_start": per_start_bytes,
+        "minima_seconds_per_run": minima_per_run,
         "goal": "two processes of one device >= 1.7x one process of one device",
     }
+    result["estimate_1m_starts_16_machines"] = estimate(result)
+    result["estimate_1m_starts_16_machines_32_cores"] = estimate(result, cores=32)
     Path(args.out).write_text(json.dumps(result, indent=2) + "\n")
     print(json.dumps({k: result[k] for k in ("seconds", "basin_map_seconds",
                                              "speedup_two_processes_basin_map",

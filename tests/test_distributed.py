@@ -9,6 +9,7 @@ on any other address.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import socket
@@ -269,3 +270,33 @@ def test_bad_results_files_are_refused(runs, tmp_path):
         bv.load_results(tmp_path / "newer.npz")
     with pytest.raises(bv.ResultsFileError, match="no results file"):
         bv.load_results(tmp_path / "missing.npz")
+
+
+def test_bad_run_options_give_one_line_errors(runs, monkeypatch, capsys):
+    from basinview.__main__ import main
+
+    folder, _out, _problem = runs
+    monkeypatch.chdir(folder)
+    for name in ("BASINVIEW_COORDINATOR", "BASINVIEW_PROCESS_COUNT", "BASINVIEW_PROCESS_ID"):
+        monkeypatch.delenv(name, raising=False)
+    base = ["run", "view.json", "--module", "lsq:loss", "--params", "params.json", "--data",
+            "data.npz"]  # fmt: skip
+    cases = [
+        (["--out", "r.txt"], "--out must end in .npz"),
+        (["--out", "one.npz"], "'one.npz' exists; pass --force"),
+        (["--out", "r.npz", "--steps", "0"], "--steps must be at least 1"),
+        (["--out", "r.npz", "--resolution", "1"], "--resolution must be at least 2"),
+    ]
+    for extra, message in cases:
+        assert main([*base, *extra]) == 2
+        err = capsys.readouterr().err
+        assert message in err and len(err.strip().splitlines()) == 1, err
+    # --starts resizes random starts only: a view of explicit starts is refused
+    settings = bv.Settings.load("view.json")
+    pts = [[0.1, 0.2, 0.3]]
+    explicit = dataclasses.replace(settings, starts={"kind": "explicit", "points": pts})
+    explicit.save("explicit.json")
+    argv = ["run", "explicit.json", *base[2:], "--out", "r.npz", "--starts", "9"]
+    assert main(argv) == 2
+    assert "--starts resizes random or initialiser starts" in capsys.readouterr().err
+    assert not (folder / "r.npz").exists()
