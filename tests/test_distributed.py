@@ -300,3 +300,15 @@ def test_bad_run_options_give_one_line_errors(runs, monkeypatch, capsys):
     assert main(argv) == 2
     assert "--starts resizes random or initialiser starts" in capsys.readouterr().err
     assert not (folder / "r.npz").exists()
+
+
+def test_a_run_basin_map_is_the_basin_map_of_the_library(runs):
+    folder, _out, problem = runs
+    result = bv.load_results(folder / "one.npz")
+    settings = result.settings
+    plane = bv.plane_from_spec(problem, settings.plane)
+    direct = bv.basin_map(
+        problem, plane, span=settings.span, resolution=7, learning_rate=0.1, steps=300
+    )
+    assert np.array_equal(direct.runs.losses, result.basin_map.runs.losses, equal_nan=True)
+    assert np.array_equal(direct.label, result.basin_map.label)
