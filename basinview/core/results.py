@@ -198,10 +198,12 @@ def load_results(path: str | os.PathLike[str], *, problem: Problem | None = None
         The analysis, with its :class:`Settings`; ``runs.config`` is None (the
         settings record the descent arguments).
 
-    Example:
-        >>> import basinview as bv                      # doctest: +SKIP
-        >>> result = bv.load_results("basins.npz")      # doctest: +SKIP
-        >>> bv.write_report("basins.html", result)      # doctest: +SKIP
+    Example (after ``python -m basinview run ... --out basins.npz``)::
+
+        import basinview as bv
+        result = bv.load_results("basins.npz")
+        bv.write_report("basins.html", result)
+        bv.figures.basin_figure(result.basin_map)
     """
     p = Path(path)
     if not p.is_file():
