@@ -142,7 +142,7 @@ def _compute(args: argparse.Namespace, cluster: Any) -> int:
         basin_rate=args.basin_rate, timings=stages,
     )  # fmt: skip
     error = ""
-    if cluster.is_writer:
+    if analysis is not None:  # process 0
         facts = {
             "processes": cluster.process_count,
             "devices": len(jax.devices()),

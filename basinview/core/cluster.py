@@ -146,7 +146,7 @@ def start_cluster(cluster: Cluster, env: Mapping[str, str] | None = None) -> Clu
     heartbeat = _int_env({ENV_HEARTBEAT: env.get(ENV_HEARTBEAT, "10")}, ENV_HEARTBEAT, 2)
     wait = _int_env({ENV_INIT_TIMEOUT: env.get(ENV_INIT_TIMEOUT, "120")}, ENV_INIT_TIMEOUT, 1)
     jax.config.update("jax_cpu_collectives_implementation", "gloo")
-    timeouts = {
+    timeouts: dict[str, Any] = {
         "initialization_timeout": wait,
         "heartbeat_timeout_seconds": heartbeat,
         "shutdown_timeout_seconds": max(heartbeat, 5),

@@ -187,7 +187,7 @@ def shared_runs(
     per = plan.runs_per_call
     lo, hi = unit_share(-(-n_starts // per), cluster)
     slo, shi = min(lo * per, n_starts), min(hi * per, n_starts)
-    common = dict(
+    common: dict[str, Any] = dict(
         optimizer=rule, steps=config.steps, plane=plane, grad_tol=config.grad_tol,
         loss_tol=config.loss_tol, divergence_factor=config.divergence_factor,
         batch_size=config.batch_size, seed=config.seed, sizes=plan.record(), progress=False,

@@ -111,7 +111,7 @@ def save_results(
             f"the folder {str(target.parent)!r} does not exist; create it first or choose "
             "another path."
         )
-    arrays: dict[str, np.ndarray] = {}
+    arrays: dict[str, Any] = {}
     parts = {
         part: _pack(getattr(analysis, part), part, arrays)
         for part in _PARTS
