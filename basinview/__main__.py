@@ -1,4 +1,4 @@
-"""Command line: ``python -m basinview demo`` and ``python -m basinview report``.
+"""Command line: ``python -m basinview demo``, ``report`` and ``run``.
 
 ``demo`` runs the embedded beacon scenario (see :mod:`basinview.scenarios`),
 prints the analysis as text tables and writes a standalone HTML report.
@@ -20,6 +20,10 @@ coordinates of a two-parameter model) or a random plane (``--normalise``
 ``filter``, ``layer`` or ``none``; ``--origin FILE`` centres it). Both
 commands compute one :class:`~basinview.core.Analysis` with
 :func:`~basinview.core.analyse`, print it and write it as a report.
+
+``run SETTINGS.json --module MODULE:FUNCTION --params FILE --out RESULTS.npz``
+computes a recorded view, optionally larger, on one or several processes
+(see :mod:`basinview.cli.run` and ``docs/distributed.md``).
 
 Bad input stops with a one-line message on stderr and exit code 2; the
 report is written only to the ``--out`` path.
@@ -45,6 +49,7 @@ from .cli import (
     plane_from_options,
     span_option,
 )
+from .cli.run import RUN_OPTIONS, run_command
 from .core.errors import BasinviewError
 
 __all__ = ["CommandError", "load_data", "load_params", "main"]
@@ -208,6 +213,7 @@ def _parser() -> argparse.ArgumentParser:
         (
             ("demo", DEMO_OPTIONS, _demo, "run the embedded demo scenario and write a report"),
             ("report", REPORT_OPTIONS, _report, "analyse your own loss and write a report"),
+            ("run", RUN_OPTIONS, run_command, "compute a recorded view at scale; write results"),
         ),
     )
 

@@ -20,6 +20,8 @@ from .analysis import (
 )
 from .basins import BasinMap, basin_map
 from .bends import CurvedPath, bezier_points, curved_path
+from .cluster import Cluster, cluster_from_env, start_cluster
+from .connectivity import Solutions, connect_runs, solution_groups
 from .curvature import (
     Spectrum,
     adaptive_threshold,
@@ -34,17 +36,6 @@ from .curvature import (
     standard_errors,
 )
 from .density import SpectralDensity, hessian_density
-from .intervals import starts_for_precision, wilson_interval
-from .connectivity import Solutions, connect_runs, solution_groups
-from .segments import segment_barriers
-from .symmetries import (
-    Symmetries,
-    exchangeable,
-    hidden_units,
-    periodic,
-    resolve_symmetries,
-    sign_flip,
-)
 from .descent import (
     STATUSES,
     DescentConfig,
@@ -54,10 +45,12 @@ from .descent import (
     descend,
     run_padding_floor,
 )
+from .distributed import analyse_shared, shared_basin_map, shared_runs, shared_surface
 from .errors import (
     LINT_CHECKS,
     BasinviewError,
     ClosedOverDataWarning,
+    ClusterError,
     DiscardedPrecisionWarning,
     FingerprintWarning,
     IntegerDataWarning,
@@ -67,10 +60,12 @@ from .errors import (
     MixedPrecisionWarning,
     NoCriticalPointError,
     ParameterError,
+    ResultsFileError,
     RowBroadcastWarning,
     SettingsError,
 )
 from .identities import CriticalPointRegistry, critical_points
+from .intervals import starts_for_precision, wilson_interval
 from .lint import lint_loss
 from .minima import (
     DIVERGED_LABEL,
@@ -97,7 +92,11 @@ from .optimizers import (
 )
 from .plane_specs import plane_from_spec, upgrade_record
 from .planes import Plane, axes_plane, random_plane, through_plane
+from .power_iteration import top_hessian_eigenvalues
 from .problem import Problem
+from .results import load_results, save_results
+from .schemes import SchemeComparison, compare_schemes
+from .segments import segment_barriers
 from .settings import SCHEMA_VERSION, Settings, library_versions, record_settings
 from .sharding import use_all_cores
 from .starts import (
@@ -107,6 +106,8 @@ from .starts import (
     grid_starts,
     initializer_starts,
     random_starts,
+    scheme_of,
+    scheme_starts,
     starts_from_spec,
 )
 from .stationary import Refinement, refine_point
@@ -119,11 +120,16 @@ from .surface import (
     segment_profile,
     span_ranges,
 )
+from .symmetries import (
+    Symmetries,
+    exchangeable,
+    hidden_units,
+    periodic,
+    resolve_symmetries,
+    sign_flip,
+)
 from .trajectory import RunRecorder, TrajectoryPlane, trajectory_plane
 from .view import ViewSpec, upgrade_settings
-from .power_iteration import top_hessian_eigenvalues
-from .schemes import SchemeComparison, compare_schemes
-from .starts import scheme_of, scheme_starts
 
 __all__ = [
     "ADAM",
@@ -252,4 +258,16 @@ __all__ = [
     "scheme_of",
     "scheme_starts",
     "top_hessian_eigenvalues",
+    # runs over several processes (core/cluster.py, core/distributed.py) and results files
+    "Cluster",
+    "ClusterError",
+    "ResultsFileError",
+    "analyse_shared",
+    "cluster_from_env",
+    "load_results",
+    "save_results",
+    "shared_basin_map",
+    "shared_runs",
+    "shared_surface",
+    "start_cluster",
 ]

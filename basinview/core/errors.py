@@ -12,6 +12,7 @@ __all__ = [
     "LINT_CHECKS",
     "BasinviewError",
     "ClosedOverDataWarning",
+    "ClusterError",
     "DiscardedPrecisionWarning",
     "FingerprintWarning",
     "IntegerDataWarning",
@@ -21,6 +22,7 @@ __all__ = [
     "MixedPrecisionWarning",
     "NoCriticalPointError",
     "ParameterError",
+    "ResultsFileError",
     "RowBroadcastWarning",
     "SettingsError",
 ]
@@ -40,6 +42,14 @@ class ParameterError(BasinviewError):
 
 class SettingsError(BasinviewError):
     """A settings record (usually JSON) is malformed, truncated or too new."""
+
+
+class ClusterError(BasinviewError):
+    """A run over several processes cannot start, disagrees, or lost a process."""
+
+
+class ResultsFileError(BasinviewError):
+    """A results file is missing, malformed, truncated or too new."""
 
 
 class FingerprintWarning(UserWarning):

@@ -16,8 +16,8 @@ from .groups import solutions_figure
 from .instruments import curved_path_figure, density_figure, trajectory_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
-from .slices import relief_figure, slice_caution, slice_figure
 from .schemes import scheme_colours, scheme_shares_figure, scheme_steps_figure
+from .slices import relief_figure, slice_caution, slice_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
 from .text import readable_table, significant
 
@@ -37,13 +37,13 @@ __all__ = [
     "profile_figure",
     "readable_table",
     "relief_figure",
+    "scheme_colours",
+    "scheme_shares_figure",
+    "scheme_steps_figure",
     "significant",
     "slice_caution",
     "slice_figure",
     "solutions_figure",
     "step_size_figure",
     "trajectory_figure",
-    "scheme_colours",
-    "scheme_shares_figure",
-    "scheme_steps_figure",
 ]
