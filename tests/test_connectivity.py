@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+import warnings
+
 import jax.numpy as jnp
 import numpy as np
 import plotly.graph_objects as go
@@ -143,3 +146,15 @@ def test_bad_points(ring_problem):
         connect_runs(ring_problem, np.zeros((3, 5)), tolerance=0.1)
     with pytest.raises(ParameterError, match="all zero"):
         connect_runs(ring_problem, on_ring(np.zeros(2)))
+
+
+def test_grouping_benchmark_runs_at_smoke_size(tmp_path):
+    from benchmarks.grouping import main
+
+    out = tmp_path / "grouping.json"
+    with warnings.catch_warnings():  # a few barely trained runs may all stand apart
+        warnings.simplefilter("ignore", MinimaWarning)
+        assert main(["--runs", "6", "--steps", "5", "--hidden", "3", "--out", str(out)]) == 0
+    info = json.loads(out.read_text())
+    assert info["parameters"] == 8 * 3 + 3 + 3 + 1 and info["runs"] == 6
+    assert info["ratio"] > 0 and info["groups"] >= 1

@@ -5,6 +5,7 @@ from __future__ import annotations
 import jax
 import jax.numpy as jnp
 import numpy as np
+import plotly.graph_objects as go
 import pytest
 import statsmodels.api as sm
 from sklearn.datasets import load_diabetes, load_iris
@@ -21,6 +22,7 @@ from basinview.core.symmetries import (
     resolve_symmetries,
     sign_flip,
 )
+from basinview.figures.groups import solutions_figure
 
 # ------------------------------------------------------------------ mixture
 PETAL = jnp.asarray(load_iris().data[:, 2], dtype=jnp.float32)  # petal length, cm
@@ -78,6 +80,9 @@ def test_mixture_fit_matches_sklearn_and_label_switches_merge(mixture):
     assert len(groups) == 1 and groups.copies.tolist() == [2] and groups.count.tolist() == [4]
     apart = connect_runs(prob, runs)
     assert len(apart) == 2 and apart.barrier[0, 1] > 10 * apart.tolerance
+    fig = solutions_figure(groups)
+    go.Figure(fig.to_dict())  # full plotly validation (one group, a symmetry note)
+    assert "copies merged: 1" in " ".join(a.text for a in fig.layout.annotations)
 
 
 # ----------------------------------------------------------------- sinusoid

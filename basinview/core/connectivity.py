@@ -101,20 +101,32 @@ class _Pairs:
     def __init__(self, problem: Any, syms: Symmetries | None, samples: int) -> None:
         self.problem, self.syms, self.samples = problem, syms, samples
         self.value: dict[tuple[int, int], float] = {}
-        self.key: dict[tuple[int, int], Any] = {}
+        self.rep_of: dict[int, int] = {}  # end point -> the representative it is
+        self.row_of: dict[int, int] = {}  # representative -> the end point it is
+
+    def lead(self, k: int, r: int) -> None:
+        """End point ``k`` becomes representative ``r``."""
+        self.rep_of[k], self.row_of[r] = r, k
+        self.value[(k, r)] = 0.0
 
     def measure(
         self, pairs: list[tuple[int, int]], pts: np.ndarray, reps: list[np.ndarray]
     ) -> None:
-        todo = [pr for pr in pairs if pr not in self.value]
+        todo = []
+        for k, r in pairs:
+            if (k, r) in self.value:
+                continue
+            # two representatives: the segment one way was measured the other way
+            other = (self.row_of.get(r, -1), self.rep_of.get(k, -1))
+            if other in self.value:
+                self.value[(k, r)] = self.value[other]
+            else:
+                todo.append((k, r))
         if not todo:
             return
         ends = np.empty((len(todo), pts.shape[1]))
         for i, (k, r) in enumerate(todo):
-            if self.syms is None:
-                ends[i] = pts[k]
-            else:
-                ends[i], self.key[(k, r)] = self.syms.align(pts[k], reps[r])
+            ends[i] = pts[k] if self.syms is None else self.syms.align(pts[k], reps[r])[0]
         starts = np.stack([reps[r] for _, r in todo])
         barrier, _, _ = segment_barriers(self.problem, starts, ends, samples=self.samples)
         for pr, b in zip(todo, barrier):
@@ -206,7 +218,7 @@ def connect_runs(
             rep_gid.append(-1)
             rep_row.append(lead)
             r = len(reps) - 1
-            pairs.value[(lead, r)] = 0.0
+            pairs.lead(lead, r)
             pairs.measure([(k, r) for k in left], pts, reps)
             left = [k for k in left if pairs.value[(k, r)] > tol]
     # 2. every end point against every representative: chains and cross-group barriers

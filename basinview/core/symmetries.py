@@ -330,7 +330,7 @@ class Symmetries:
                     changed |= bool(np.any(cols != rows) or np.any(s < 0))
             if not changed:
                 break
-        keys = []
+        keys: list[tuple[int, ...]] = []
         for s in state:
             if s is None:
                 keys.append(())
