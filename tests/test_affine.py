@@ -199,7 +199,9 @@ def test_many_linear_primitives_in_float64(x64):
     assert plan.affine_elements < 40  # the whole linear part stays affine (s, u: 6 + 4 ...)
     plane = random_plane(prob, seed=1, normalise="none")
     fast, plain = _both(prob, plane)
-    refs = [float(many_linear_ops(jnp.asarray(t), x, mask, y)) for t in _grid_thetas(prob, plane, fast)]
+    refs = [
+        float(many_linear_ops(jnp.asarray(t), x, mask, y)) for t in _grid_thetas(prob, plane, fast)
+    ]
     # Source: the loss itself evaluated point by point in float64 (JAX, no plane, no vmap)
     np.testing.assert_allclose(fast.loss.ravel(), refs, rtol=1e-12, atol=1e-12)
     np.testing.assert_allclose(fast.loss, plain.loss, rtol=1e-12, atol=1e-12)

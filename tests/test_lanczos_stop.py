@@ -49,7 +49,9 @@ def test_top5_with_at_most_1_2x_eigsh_matvecs(x64, loader):
     assert spec.matvecs <= 1.2 * calls[0]
     np.testing.assert_allclose(spec.values, ref, rtol=1e-10)
     # Source: jax.hessian + numpy.linalg.eigvalsh (the dense spectrum)
-    dense = np.linalg.eigvalsh(np.asarray(jax.hessian(prob.flat_loss)(jnp.asarray(point), prob.data)))
+    dense = np.linalg.eigvalsh(
+        np.asarray(jax.hessian(prob.flat_loss)(jnp.asarray(point), prob.data))
+    )
     assert spec.lambda_min == pytest.approx(dense[0], rel=1e-8)
 
 

@@ -78,8 +78,6 @@ class Spectrum:
         return self.lambda_max / self.lambda_min
 
 
-
-
 def hessian_matrix(problem: Problem, theta: Any) -> np.ndarray:
     """The dense ``(n, n)`` Hessian at ``theta`` (use for small ``n`` only)."""
     problem.check_differentiable()
@@ -128,7 +126,11 @@ def _lanczos(
             if b < 1e-12 * max(1.0, abs(alpha[j])):
                 m = j + 1
                 break
-            if k is not None and j + 1 >= k + 1 and _converged(alpha[: j + 1], beta[:j], b, k, tol):
+            if (
+                k is not None
+                and j + 1 >= k + 1
+                and _converged(alpha[: j + 1], beta[:j], float(b), k, tol)
+            ):
                 m = j + 1
                 break
             beta[j] = b

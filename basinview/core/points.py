@@ -16,6 +16,7 @@ import jax
 import numpy as np
 
 from ._tuning import fastest, pipelined, progress_counter
+from .affine import affine_wins, plane_plan, plane_point_fn
 from .cost_model import (
     SurfaceSizes,
     chunk_size_for,
@@ -23,7 +24,6 @@ from .cost_model import (
     surface_block,
     surface_sizes_from,
 )
-from .affine import affine_wins, plane_plan, plane_point_fn
 from .errors import ParameterError
 from .problem import Problem, loss_runtime_errors
 from .sharding import batch_devices, replicated, shard_batch, split
@@ -83,9 +83,7 @@ class _Grid:
                 ("data-on", devices), lambda: jax.device_put(problem.data, rep)
             )
 
-    def launch(
-        self, chunk: int, block: int, piece: np.ndarray, affine: bool = False
-    ) -> jax.Array:
+    def launch(self, chunk: int, block: int, piece: np.ndarray, affine: bool = False) -> jax.Array:
         """Start the evaluation of ``piece`` (``block * len(devices)`` points)."""
         fn = _block_fn(self.problem, chunk, block, self.devices, affine)
         if len(self.devices) == 1:
