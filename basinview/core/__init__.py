@@ -6,6 +6,7 @@ one :class:`Analysis` per view (:func:`analyse`).
 """
 
 from ._tuning import bucket, chunk_size_for, count_compilations
+from .affine import PlanePlan, affine_wins, plane_plan
 from .analysis import (
     Analysis,
     View,
@@ -146,6 +147,7 @@ __all__ = [
     "NoCriticalPointError",
     "ParameterError",
     "Plane",
+    "PlanePlan",
     "Problem",
     "Profile",
     "Refinement",
@@ -164,6 +166,7 @@ __all__ = [
     "View",
     "ViewSpec",
     "adaptive_threshold",
+    "affine_wins",
     "analyse",
     "axes_plane",
     "basin_map",
@@ -204,6 +207,7 @@ __all__ = [
     "optax_rule",
     "optimal_fixed_step",
     "plane_from_spec",
+    "plane_plan",
     "preconditioned_sharpness",
     "random_plane",
     "random_starts",
