@@ -10,7 +10,7 @@ once (``jax.make_jaxpr``; nothing is compiled) and tags every value:
 * ``const``: does not depend on ``theta`` (the data and what is computed
   from them alone);
 * ``affine``: ``c0 + a c1 + b c2``; produced by a linear primitive whose
-  operands are affine or constant (see ``_ADDITIVE``, ``_ONE_FACTOR``,
+  operands are affine or constant (see ``ADDITIVE_PRIMITIVES``, ``_ONE_FACTOR``,
   ``_LINEAR_OPERAND``: ``dot_general``/``mul`` with one constant factor,
   ``add``/``sub``, ``neg``, ``div`` by a constant, reshapes, broadcasts,
   transposes, slices, ``split``, ``concatenate``, ``select_n`` with a
@@ -37,6 +37,7 @@ outermost (rows inner).
 
 :func:`affine_wins` decides from the plan's shapes whether this beats the
 plain path (``loss(origin + a d1 + b d2)`` per point); see its docstring.
+The evaluation itself is in :mod:`basinview.core.affine_eval`.
 A loss with side effects (callbacks, prints) always takes the plain path.
 
 The plain path and this one compute the same function of ``(a, b)``;
@@ -46,7 +47,7 @@ bit for bit), at the level of float rounding of the affine intermediates.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -56,11 +57,16 @@ import jax.numpy as jnp
 import numpy as np
 
 __all__ = [
+    "ADDITIVE_PRIMITIVES",
+    "AFFINE",
     "AFFINE_GAIN",
+    "CONST",
+    "GENERAL",
+    "PlanEquation",
+    "PlanLiteral",
     "PlanePlan",
     "affine_wins",
     "plane_plan",
-    "plane_point_fn",
 ]
 
 AFFINE_GAIN = 1.5
@@ -78,7 +84,7 @@ _TRANSCENDENTAL = frozenset(
 CONST, AFFINE, GENERAL = "const", "affine", "general"
 
 # Primitives whose every operand may be affine (the constant ones enter c0 only).
-_ADDITIVE = frozenset({"add", "sub", "add_any", "concatenate"})
+ADDITIVE_PRIMITIVES = frozenset({"add", "sub", "add_any", "concatenate"})
 # Exactly one operand affine, the other a constant factor.
 _ONE_FACTOR = frozenset({"mul", "dot_general"})
 # Linear in the first operand; every other operand must be constant.
@@ -113,15 +119,19 @@ def _callee(eqn: Any) -> tuple[Any, Sequence[Any]] | None:
 
 
 @dataclass(frozen=True)
-class _Eqn:
+class PlanEquation:
+    """One equation of the flattened program (variables renamed to integers)."""
+
     primitive: Any
     params: dict[str, Any]
-    ins: tuple[Any, ...]  # int keys or _Lit
+    ins: tuple[Any, ...]  # int keys or PlanLiteral
     outs: tuple[int, ...]
 
 
 @dataclass(frozen=True)
-class _Lit:
+class PlanLiteral:
+    """A literal operand (a constant written into the program)."""
+
     value: Any
 
 
@@ -148,7 +158,7 @@ class PlanePlan:
     theta: int
     data: tuple[int, ...]
     consts: tuple[tuple[int, Any], ...]
-    eqns: tuple[_Eqn, ...]
+    eqns: tuple[PlanEquation, ...]
     tags: dict[int, str]
     output: Any
     materialised: tuple[int, ...]
@@ -188,7 +198,7 @@ def _tag(prim: str, params: dict[str, Any], tags: Sequence[str]) -> str:
         return CONST
     if GENERAL in tags:
         return GENERAL
-    if prim in _ADDITIVE:
+    if prim in ADDITIVE_PRIMITIVES:
         return AFFINE
     if prim in _ONE_FACTOR:
         return AFFINE if sorted(tags) == [AFFINE, CONST] else GENERAL
@@ -209,13 +219,13 @@ def _flatten(closed: Any) -> tuple[Any, ...]:
     """Equations with ``jit`` calls opened, variables renamed to integers."""
     counter = iter(range(1 << 62))
     avals: dict[int, Any] = {}
-    eqns: list[_Eqn] = []
+    eqns: list[PlanEquation] = []
     consts: list[tuple[int, Any]] = []
     opened: list[str] = []
 
     def atom(env: dict[Any, Any], v: Any) -> Any:
         if isinstance(v, jcore.Literal):
-            return _Lit(v.val)
+            return PlanLiteral(v.val)
         return env[v]
 
     def walk(jaxpr: Any, const_vals: Sequence[Any], ins: Sequence[Any]) -> list[Any]:
@@ -232,7 +242,7 @@ def _flatten(closed: Any) -> tuple[Any, ...]:
             if callee is not None:
                 keys = []
                 for a in args:  # a literal argument becomes a constant of the call
-                    if isinstance(a, _Lit):
+                    if isinstance(a, PlanLiteral):
                         key = next(counter)
                         consts.append((key, a.value))
                         a = key
@@ -246,7 +256,7 @@ def _flatten(closed: Any) -> tuple[Any, ...]:
             for var, key in zip(eqn.outvars, outs_k):
                 env[var] = key
                 avals[key] = var.aval
-            eqns.append(_Eqn(eqn.primitive, dict(eqn.params), tuple(args), outs_k))
+            eqns.append(PlanEquation(eqn.primitive, dict(eqn.params), tuple(args), outs_k))
         return [atom(env, v) for v in jaxpr.outvars]
 
     n_in = len(closed.jaxpr.invars)
@@ -265,7 +275,7 @@ def plane_plan(problem: Any) -> PlanePlan | None:
     return problem.cached(("plane-plan",), lambda: _build_plan(problem))
 
 
-def _weighted_flops(eqn: _Eqn, ins: Sequence[Any], outs: Sequence[Any], plain: bool) -> int:
+def _weighted_flops(eqn: PlanEquation, ins: Sequence[Any], outs: Sequence[Any], plain: bool) -> int:
     from .cost_model import equation_flops
 
     name = eqn.primitive.name
@@ -282,7 +292,7 @@ def _weighted_flops(eqn: _Eqn, ins: Sequence[Any], outs: Sequence[Any], plain: b
 _RECOMPUTE = frozenset({"add", "sub", "add_any", "mul", "neg", "div", "convert_element_type"})
 
 
-def _demote(eqns: Sequence[_Eqn], tags: dict[int, str], out: Any) -> set[int]:
+def _demote(eqns: Sequence[PlanEquation], tags: dict[int, str], out: Any) -> set[int]:
     """The affine values to materialise per point, after cheap ones are recomputed.
 
     An element-wise affine equation whose results only general equations
@@ -291,11 +301,11 @@ def _demote(eqns: Sequence[_Eqn], tags: dict[int, str], out: Any) -> set[int]:
     per element) than to materialise (two multiply-adds): it becomes general.
     """
 
-    def users() -> dict[int, list[_Eqn]]:
-        by: dict[int, list[_Eqn]] = {}
+    def users() -> dict[int, list[PlanEquation]]:
+        by: dict[int, list[PlanEquation]] = {}
         for e in eqns:
             for a in e.ins:
-                if not isinstance(a, _Lit):
+                if not isinstance(a, PlanLiteral):
                     by.setdefault(a, []).append(e)
         return by
 
@@ -305,9 +315,9 @@ def _demote(eqns: Sequence[_Eqn], tags: dict[int, str], out: Any) -> set[int]:
             for e in eqns
             if tags[e.outs[0]] == GENERAL
             for a in e.ins
-            if not isinstance(a, _Lit) and tags[a] == AFFINE
+            if not isinstance(a, PlanLiteral) and tags[a] == AFFINE
         }
-        if not isinstance(out, _Lit) and tags[out] == AFFINE:
+        if not isinstance(out, PlanLiteral) and tags[out] == AFFINE:
             m.add(out)
         return m
 
@@ -322,7 +332,7 @@ def _demote(eqns: Sequence[_Eqn], tags: dict[int, str], out: Any) -> set[int]:
                 continue
             if key == out or any(tags[u.outs[0]] != GENERAL for u in by.get(key, [])):
                 continue
-            affine_ins = [a for a in e.ins if not isinstance(a, _Lit) and tags[a] == AFFINE]
+            affine_ins = [a for a in e.ins if not isinstance(a, PlanLiteral) and tags[a] == AFFINE]
             if affine_ins and all(a in mat for a in affine_ins):
                 tags[key] = GENERAL
                 changed = True
@@ -347,10 +357,10 @@ def _build_plan(problem: Any) -> PlanePlan | None:
         tags[key] = CONST
 
     def tag_of(a: Any) -> str:
-        return CONST if isinstance(a, _Lit) else tags[a]
+        return CONST if isinstance(a, PlanLiteral) else tags[a]
 
     def aval_of(a: Any) -> Any:
-        if isinstance(a, _Lit):
+        if isinstance(a, PlanLiteral):
             return jax.ShapeDtypeStruct(np.shape(a.value), jnp.result_type(a.value))
         return avals[a]
 
@@ -362,7 +372,7 @@ def _build_plan(problem: Any) -> PlanePlan | None:
         for key, aval in zip(eqn.outs, outs):
             tags[key] = tag
             avals[key] = aval
-    if not isinstance(out, _Lit):
+    if not isinstance(out, PlanLiteral):
         avals.setdefault(out, out_avals.get(out))
     mat = _demote(eqns, tags, out)
     if not mat:  # theta never reaches the loss through an affine value
@@ -397,86 +407,6 @@ def _build_plan(problem: Any) -> PlanePlan | None:
         opened=tuple(opened),
         general=tuple(general),
     )
-
-
-# ---------------------------------------------------------------- evaluation
-def _value(env: dict[int, Any], a: Any) -> Any:
-    return a.value if isinstance(a, _Lit) else env[a]
-
-
-def _affine_apply(eqn: _Eqn, parts: list[Any], tags: list[str]) -> list[tuple[Any, Any, Any]]:
-    """The coefficients ``(c0, c1, c2)`` of every output of an affine equation."""
-    name = eqn.primitive.name
-    zeros = name in _ADDITIVE or name == "pad" or name == "select_n"
-    out: list[list[Any]] = []
-    for k in range(3):
-        ops = []
-        for i, (p, t) in enumerate(zip(parts, tags)):
-            if t == AFFINE:
-                ops.append(p[k])
-            elif k == 0 or not zeros or (name == "select_n" and i == 0):
-                ops.append(p)
-            else:
-                ops.append(jnp.zeros(np.shape(p), jnp.result_type(p)))
-        res = eqn.primitive.bind(*ops, **eqn.params)
-        out.append(list(res) if eqn.primitive.multiple_results else [res])
-    return [(out[0][j], out[1][j], out[2][j]) for j in range(len(out[0]))]
-
-
-def _plane_stage(plan: PlanePlan, origin: Any, d1: Any, d2: Any, data: Sequence[Any]) -> Any:
-    """Constants and coefficients the per-point stage reads (once per plane)."""
-    env: dict[int, Any] = {plan.theta: (origin, d1, d2)}
-    env.update(zip(plan.data, data))
-    env.update(plan.consts)
-    for eqn in plan.eqns:
-        tag = plan.tags[eqn.outs[0]]
-        if tag == GENERAL:
-            continue
-        parts = [_value(env, a) for a in eqn.ins]
-        if tag == CONST:
-            res = eqn.primitive.bind(*parts, **eqn.params)
-            res = list(res) if eqn.primitive.multiple_results else [res]
-        else:
-            tags = [CONST if isinstance(a, _Lit) else plan.tags[a] for a in eqn.ins]
-            res = _affine_apply(eqn, parts, tags)
-        env.update(zip(eqn.outs, res))
-    needed = set(plan.materialised)
-    for eqn in plan.eqns:
-        if plan.tags[eqn.outs[0]] == GENERAL:
-            needed.update(a for a in eqn.ins if not isinstance(a, _Lit))
-    if not isinstance(plan.output, _Lit):
-        needed.add(plan.output)
-    return {k: env[k] for k in needed if k in env}
-
-
-def _point_stage(plan: PlanePlan, pre: dict[int, Any], a: Any, b: Any) -> Any:
-    """The loss at plane point ``(a, b)`` from the plane stage's values."""
-    env = dict(pre)
-    for k in plan.materialised:
-        c0, c1, c2 = pre[k]
-        env[k] = c0 + a.astype(c1.dtype) * c1 + b.astype(c2.dtype) * c2
-    for eqn in plan.eqns:
-        if plan.tags[eqn.outs[0]] != GENERAL:
-            continue
-        res = eqn.primitive.bind(*(_value(env, x) for x in eqn.ins), **eqn.params)
-        env.update(zip(eqn.outs, list(res) if eqn.primitive.multiple_results else [res]))
-    return _value(env, plan.output)
-
-
-def plane_point_fn(
-    plan: PlanePlan, origin: Any, d1: Any, d2: Any, data: Any
-) -> Callable[[jax.Array], jax.Array]:
-    """``p -> loss(origin + p[0] d1 + p[1] d2)`` with the plane stage computed now.
-
-    Call inside a traced function (``jit``); the returned function is
-    meant for ``jax.lax.map``/``jax.vmap`` over points ``p = (a, b)``.
-    """
-    pre = _plane_stage(plan, origin, d1, d2, jax.tree_util.tree_leaves(data))
-
-    def point(p: jax.Array) -> jax.Array:
-        return _point_stage(plan, pre, p[0], p[1])
-
-    return point
 
 
 def affine_wins(plan: PlanePlan | None, points_per_call: int) -> bool:
