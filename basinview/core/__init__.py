@@ -6,6 +6,7 @@ one :class:`Analysis` per view (:func:`analyse`).
 """
 
 from ._tuning import bucket, chunk_size_for, count_compilations
+from .affine import PlanePlan, affine_wins, plane_plan
 from .analysis import (
     Analysis,
     View,
@@ -168,6 +169,7 @@ __all__ = [
     "NoCriticalPointError",
     "ParameterError",
     "Plane",
+    "PlanePlan",
     "Problem",
     "Profile",
     "Refinement",
@@ -190,6 +192,7 @@ __all__ = [
     "View",
     "ViewSpec",
     "adaptive_threshold",
+    "affine_wins",
     "analyse",
     "analyse_shared",
     "axes_plane",
@@ -236,6 +239,7 @@ __all__ = [
     "optimal_fixed_step",
     "periodic",
     "plane_from_spec",
+    "plane_plan",
     "preconditioned_sharpness",
     "random_plane",
     "random_starts",

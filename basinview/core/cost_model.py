@@ -56,6 +56,7 @@ __all__ = [
     "SurfaceSizes",
     "chunk_size_for",
     "descent_sizes",
+    "equation_flops",
     "evaluation_bytes",
     "loss_cost",
     "runs_per_call_for",
@@ -176,6 +177,24 @@ def _walk(jaxpr: Any) -> tuple[int, int]:
             total_bytes += b
             flops += f * repeat
     return total_bytes, flops
+
+
+def equation_flops(name: str, params: Any, in_avals: Any, out_avals: Any) -> int:
+    """FLOPs of one equation by the counting rules above (used by :mod:`basinview.core.affine`).
+
+    ``in_avals``/``out_avals`` carry ``.shape``; a sub-program in ``params``
+    (a ``scan`` body, a custom-derivative call) adds its own count, a
+    ``scan`` body times its length.
+    """
+    out = sum(int(np.prod(a.shape, dtype=np.int64)) for a in out_avals)
+    if name == "dot_general":
+        (lc, _rc), _batch = params["dimension_numbers"]
+        lhs = in_avals[0].shape
+        k = int(np.prod([lhs[i] for i in lc], dtype=np.int64)) if lc else 1
+        return 2 * out * k
+    repeat = int(params.get("length", 1)) if name == "scan" else 1
+    inner = sum(_walk(sub)[1] for sub in jax.extend.core.jaxprs_in_params(params))
+    return out + inner * repeat
 
 
 def loss_cost(problem: Any, *, gradient: bool = False) -> LossCost:

@@ -31,6 +31,7 @@ from .problem import Problem
 
 __all__ = [
     "EXACT_LIMIT",
+    "LANCZOS_TOL",
     "Spectrum",
     "adaptive_threshold",
     "gauss_newton_matrix",
@@ -56,12 +57,14 @@ class Spectrum:
         vectors: ``(k, n)`` unit eigenvectors matching ``values``.
         lambda_min: the smallest eigenvalue (negative at saddles and maxima).
         method: ``"exact"`` (dense Hessian + eigh) or ``"lanczos"``.
+        matvecs: Hessian-vector products Lanczos used (None for ``"exact"``).
     """
 
     values: np.ndarray
     vectors: np.ndarray
     lambda_min: float
     method: str
+    matvecs: int | None = None
 
     @property
     def lambda_max(self) -> float:
@@ -75,8 +78,6 @@ class Spectrum:
         return self.lambda_max / self.lambda_min
 
 
-
-
 def hessian_matrix(problem: Problem, theta: Any) -> np.ndarray:
     """The dense ``(n, n)`` Hessian at ``theta`` (use for small ``n`` only)."""
     problem.check_differentiable()
@@ -85,10 +86,28 @@ def hessian_matrix(problem: Problem, theta: Any) -> np.ndarray:
     return 0.5 * (h + h.T)
 
 
+LANCZOS_TOL = 1e-10
+"""Residual bound, relative to the largest Ritz value, at which Lanczos stops."""
+
+
 def _lanczos(
-    matvec: Callable[[np.ndarray], np.ndarray], n: int, iterations: int, seed: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """Ritz values and vectors after ``iterations`` Lanczos steps (full reorthogonalisation)."""
+    matvec: Callable[[np.ndarray], np.ndarray],
+    n: int,
+    iterations: int,
+    seed: int,
+    k: int | None = None,
+    tol: float = LANCZOS_TOL,
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """Ritz values and vectors by Lanczos (full reorthogonalisation), and the step count.
+
+    With ``k`` the iteration stops as soon as the ``k`` largest Ritz values
+    and the smallest one have converged: for a Ritz pair ``(theta_i, y_i)``
+    of the ``m``-step tridiagonal matrix, ``|beta_m s_mi|`` (``s_mi`` the
+    last component of its eigenvector) is the residual norm
+    ``||H y_i - theta_i y_i||`` and bounds ``theta_i``'s distance to an
+    eigenvalue; each must be below ``tol`` times the largest ``|theta|``.
+    Otherwise (or if they never converge) it runs ``iterations`` steps.
+    """
     rng = np.random.default_rng(seed)
     q = rng.standard_normal(n)
     q /= np.linalg.norm(q)
@@ -107,12 +126,29 @@ def _lanczos(
             if b < 1e-12 * max(1.0, abs(alpha[j])):
                 m = j + 1
                 break
+            if (
+                k is not None
+                and j + 1 >= k + 1
+                and _converged(alpha[: j + 1], beta[:j], float(b), k, tol)
+            ):
+                m = j + 1
+                break
             beta[j] = b
             q = w / b
     t = np.diag(alpha[:m]) + np.diag(beta[: m - 1], 1) + np.diag(beta[: m - 1], -1)
     vals, vecs = np.linalg.eigh(t)
     ritz = vecs.T @ basis[:m]
-    return vals, ritz
+    return vals, ritz, m
+
+
+def _converged(alpha: np.ndarray, beta: np.ndarray, b: float, k: int, tol: float) -> bool:
+    """Whether the top-``k`` and the smallest Ritz values of ``T`` have residual bounds below tol."""
+    t = np.diag(alpha) + np.diag(beta, 1) + np.diag(beta, -1)
+    vals, vecs = np.linalg.eigh(t)
+    bounds = np.abs(b * vecs[-1])
+    scale = max(float(np.abs(vals).max()), np.finfo(float).tiny)
+    watched = np.r_[np.arange(len(vals) - min(k, len(vals)), len(vals)), 0]
+    return bool(np.all(bounds[watched] <= tol * scale))
 
 
 def hessian_spectrum(
@@ -123,6 +159,7 @@ def hessian_spectrum(
     method: str = "auto",
     iterations: int | None = None,
     seed: int = 0,
+    tol: float = LANCZOS_TOL,
 ) -> Spectrum:
     """Top-``k`` Hessian eigenpairs and the smallest eigenvalue at ``theta``.
 
@@ -133,14 +170,20 @@ def hessian_spectrum(
         method: ``"exact"`` forms the Hessian and calls ``eigh``; ``"lanczos"``
             runs Lanczos iterations on Hessian-vector products (memory O(n x
             iterations)); ``"auto"`` is exact up to :data:`EXACT_LIMIT` parameters.
-        iterations: Lanczos steps (default ``min(n, max(4k + 40, 60))``).
+        iterations: most Lanczos steps (default ``min(n, max(4k + 40, 60))``).
+            Lanczos stops earlier once the ``k`` largest Ritz values and the
+            smallest have converged (residual bound ``|beta_m s_mi|`` below
+            ``tol`` times the largest Ritz value); :attr:`Spectrum.matvecs`
+            says how many Hessian-vector products it used.
         seed: seed of the Lanczos start vector.
+        tol: relative residual bound at which Lanczos stops.
 
     References:
         Lanczos, C. (1950). An iteration method for the solution of the eigenvalue
         problem of linear differential and integral operators. J. Res. Nat. Bur.
         Standards 45:255-282. Golub, G. H. & Van Loan, C. F., Matrix Computations,
-        ch. 10. Pearlmutter, B. A. (1994). Fast exact multiplication by the
+        ch. 10 (the residual bound of a Ritz pair). Parlett, B. N. (1998). The
+        Symmetric Eigenvalue Problem. SIAM, ch. 13. Pearlmutter, B. A. (1994). Fast exact multiplication by the
         Hessian. Neural Computation 6(1):147-160.
     """
     n = problem.size
@@ -150,6 +193,8 @@ def hessian_spectrum(
         )
     if method not in ("auto", "exact", "lanczos"):
         raise ParameterError(f"method must be 'auto', 'exact' or 'lanczos'; got {method!r}.")
+    if isinstance(tol, bool) or not isinstance(tol, (int, float)) or not 0 < tol < 1:
+        raise ParameterError(f"tol must be a number between 0 and 1, e.g. 1e-10; got {tol!r}.")
     point = finite_point(problem, theta)
     value = float(problem.value(point))
     if not np.isfinite(value):
@@ -175,7 +220,7 @@ def hessian_spectrum(
     def matvec(v: np.ndarray) -> np.ndarray:
         return np.asarray(problem.hvp(point, np.asarray(v, dtype)), dtype=np.float64)
 
-    vals, ritz = _lanczos(matvec, n, steps, seed)
+    vals, ritz, used = _lanczos(matvec, n, steps, seed, k=k, tol=tol)
     if not np.all(np.isfinite(vals)):
         raise ParameterError(
             "Hessian-vector products are not finite at this point; choose a point where "
@@ -184,7 +229,7 @@ def hessian_spectrum(
     order = np.argsort(vals)[::-1][:k]
     vecs = ritz[order]
     vecs /= np.linalg.norm(vecs, axis=1, keepdims=True)
-    return Spectrum(vals[order], vecs, float(vals.min()), "lanczos")
+    return Spectrum(vals[order], vecs, float(vals.min()), "lanczos", used)
 
 
 def stability_bound(
@@ -322,7 +367,7 @@ def preconditioned_sharpness(
         hv = problem.hvp(point, jnp.asarray(s * v, dtype))
         return s * np.asarray(hv, dtype=np.float64)
 
-    vals, _ = _lanczos(matvec, n, min(n, 60), seed)
+    vals, _, _ = _lanczos(matvec, n, min(n, 60), seed, k=1)
     return float(vals.max())
 
 

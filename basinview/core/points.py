@@ -16,6 +16,8 @@ import jax
 import numpy as np
 
 from ._tuning import fastest, pipelined, progress_counter
+from .affine import affine_wins, plane_plan
+from .affine_eval import plane_point_fn
 from .cost_model import (
     SurfaceSizes,
     chunk_size_for,
@@ -27,7 +29,7 @@ from .errors import ParameterError
 from .problem import Problem, loss_runtime_errors
 from .sharding import batch_devices, replicated, shard_batch, split
 
-__all__ = ["evaluate_points", "evaluate_points_sized", "points_sizes"]
+__all__ = ["evaluate_points", "evaluate_points_sized", "points_sizes", "uses_affine"]
 
 _TUNE_CHUNKS = (2, 8, 64)
 _TUNE_POINTS = 512
@@ -35,21 +37,33 @@ _TUNE_POINTS = 512
 _TUNE_MAX_CHUNK_BYTES = 128 * 2**20
 
 
-def _block_fn(problem: Problem, chunk: int, block: int, devices: tuple[Any, ...]) -> Any:
-    """Compiled loss over ``block`` points per device, ``chunk`` vectorised at a time."""
+def _block_fn(
+    problem: Problem, chunk: int, block: int, devices: tuple[Any, ...], affine: bool = False
+) -> Any:
+    """Compiled loss over ``block`` points per device, ``chunk`` vectorised at a time.
+
+    With ``affine`` the loss's plane-affine plan (:mod:`basinview.core.affine`)
+    computes the affine intermediates' coefficients once per call.
+    """
+    plan = plane_plan(problem) if affine else None
 
     def build() -> Any:
         def run(
             ab: jax.Array, origin: jax.Array, d1: jax.Array, d2: jax.Array, data: Any
         ) -> jax.Array:
-            def point(p: jax.Array) -> jax.Array:
-                return problem.flat_loss(origin + p[0] * d1 + p[1] * d2, data)
+            if plan is not None:
+                point = plane_point_fn(plan, origin, d1, d2, data)
+            else:
+
+                def point(p: jax.Array) -> jax.Array:
+                    return problem.flat_loss(origin + p[0] * d1 + p[1] * d2, data)
 
             return jax.lax.map(point, ab, batch_size=chunk)
 
         return shard_batch(run, devices, (0, None, None, None, None), 0)
 
-    return problem.compiled(("surface-block", chunk, block, devices), build)
+    key = ("surface-block", chunk, block, devices) + (("affine",) if plan is not None else ())
+    return problem.compiled(key, build)
 
 
 class _Grid:
@@ -70,9 +84,9 @@ class _Grid:
                 ("data-on", devices), lambda: jax.device_put(problem.data, rep)
             )
 
-    def launch(self, chunk: int, block: int, piece: np.ndarray) -> jax.Array:
+    def launch(self, chunk: int, block: int, piece: np.ndarray, affine: bool = False) -> jax.Array:
         """Start the evaluation of ``piece`` (``block * len(devices)`` points)."""
-        fn = _block_fn(self.problem, chunk, block, self.devices)
+        fn = _block_fn(self.problem, chunk, block, self.devices, affine)
         if len(self.devices) == 1:
             placed = jax.device_put(piece, self.devices[0])
         else:
@@ -158,6 +172,7 @@ def evaluate_points(
     devices: Any = None,
     tune: bool = False,
     sizes: Any = None,
+    affine: bool | None = None,
 ) -> np.ndarray:
     """Loss at ``origin + a * d1 + b * d2`` for each row ``(a, b)`` of ``ab``.
 
@@ -172,11 +187,31 @@ def evaluate_points(
     the problem and earlier results intact. ``devices`` (default: all
     devices JAX shows, see :func:`use_all_cores`) share the points; the
     values do not depend on how many devices there are.
+
+    ``affine`` chooses how each point is computed: ``None`` (default) lets
+    :func:`~basinview.core.affine.affine_wins` decide from the loss's
+    shapes, ``True`` computes the loss's affine intermediates once per
+    call and each point from their coefficients (see
+    :mod:`basinview.core.affine`; the plain path where the loss has no
+    plan), ``False`` evaluates ``loss(origin + a d1 + b d2)`` per point.
+    Both give the same values to float rounding.
     """
     return evaluate_points_sized(
         problem, origin, d1, d2, ab, chunk_size=chunk_size, progress=progress, devices=devices,
-        tune=tune, sizes=sizes,
+        tune=tune, sizes=sizes, affine=affine,
     )[0]  # fmt: skip
+
+
+def uses_affine(problem: Problem, block: int, affine: bool | None = None) -> bool:
+    """Whether a call of ``block`` points per device takes the plane-affine path."""
+    if affine is not None and not isinstance(affine, bool):
+        raise ParameterError(f"affine must be None, True or False; got {affine!r}.")
+    if affine is False:
+        return False
+    plan = plane_plan(problem)
+    if plan is None:
+        return False
+    return True if affine else affine_wins(plan, block)
 
 
 def evaluate_points_sized(
@@ -191,6 +226,7 @@ def evaluate_points_sized(
     devices: Any,
     tune: bool,
     sizes: Any,
+    affine: bool | None = None,
 ) -> tuple[np.ndarray, SurfaceSizes]:
     """:func:`evaluate_points`, also returning the sizes it used."""
     dtype = problem.dtype
@@ -200,13 +236,14 @@ def evaluate_points_sized(
     plan = points_sizes(
         problem, total, chunk_size=chunk_size, tune=tune, sizes=sizes, devices=devs, ab=ab
     )
+    use = uses_affine(problem, plan.block, affine)
     grid = _Grid(problem, devs, [np.asarray(x, dtype=dtype) for x in (origin, d1, d2)])
     step = plan.block * len(devs)
     n_calls = -(-total // step)
     out = np.empty(n_calls * step, dtype=dtype)
 
     def launch(i: int) -> Any:
-        return grid.launch(plan.chunk, plan.block, _padded(ab, i * step, step))
+        return grid.launch(plan.chunk, plan.block, _padded(ab, i * step, step), use)
 
     def collect(i: int, result: Any) -> None:
         out[i * step : (i + 1) * step] = np.asarray(result)

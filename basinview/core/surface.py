@@ -168,6 +168,7 @@ def evaluate_surface(
     devices: Any = None,
     tune: bool = False,
     sizes: Any = None,
+    affine: bool | None = None,
 ) -> Surface:
     """The loss on a ``resolution`` grid of ``plane`` over ``span``.
 
@@ -187,6 +188,9 @@ def evaluate_surface(
             shows), a count, or a list of devices.
         tune: time a few chunk sizes once per problem instead of the cost model.
         sizes: program sizes to reuse, as recorded in :attr:`Surface.sizes`.
+        affine: compute the loss's affine intermediates once per plane
+            (``True``), per point (``False``), or as the cost model says
+            (``None``); see :func:`evaluate_points`. Same values either way.
 
     Caution: the surface is a 2-D slice of an n-dimensional loss. Its lowest
     point is not necessarily a minimum of the loss.
@@ -216,7 +220,7 @@ def evaluate_surface(
     show = progress if progress is not None else (ra * rb > 250_000)
     loss, used = evaluate_points_sized(
         problem, plane.origin, plane.d1, plane.d2, ab, chunk_size=chunk_size, progress=show,
-        devices=devices, tune=tune, sizes=sizes,
+        devices=devices, tune=tune, sizes=sizes, affine=affine,
     )  # fmt: skip
     return Surface(plane=plane, a=a, b=b, loss=loss.reshape(rb, ra), sizes=used.record())
 
