@@ -64,6 +64,7 @@ from .errors import (
     ResultsFileError,
     RowBroadcastWarning,
     SettingsError,
+    SymmetryWarning,
 )
 from .identities import CriticalPointRegistry, critical_points
 from .intervals import starts_for_precision, wilson_interval
@@ -165,6 +166,7 @@ __all__ = [
     "LossLintWarning",
     "Minima",
     "MinimaWarning",
+    "SymmetryWarning",
     "MixedPrecisionWarning",
     "NoCriticalPointError",
     "ParameterError",

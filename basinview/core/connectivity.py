@@ -52,7 +52,7 @@ from .intervals import wilson_interval
 from .minima import DIVERGED_LABEL, MAX_STEPS_LABEL
 from .segments import _check_samples, segment_barriers, segment_losses
 from .solutions import Solutions, group_name, solution_groups
-from .symmetries import Symmetries, resolve_symmetries
+from .symmetries import Symmetries, resolve_symmetries, warn_if_not_symmetric
 
 __all__ = ["Solutions", "connect_runs", "default_tolerance", "solution_groups"]
 
@@ -88,11 +88,18 @@ def _inputs(problem: Any, runs: Any, include_unconverged: bool) -> tuple[Any, ..
 
 
 def default_tolerance(end_loss: np.ndarray, drop: float) -> float:
-    """``0.1 * median |end loss| + 0.02 * (median start loss - median end loss)``."""
+    """``0.1 * m + 0.02 * min(drop, 5 m)`` with ``m`` the median ``|end loss|``.
+
+    ``drop`` is the loss gained by training (median start loss minus median
+    end loss). It is capped at five times the end loss: starts drawn far from
+    the data (start losses in the thousands on a regression) must not make
+    every barrier look small.
+    """
     fin = end_loss[np.isfinite(end_loss)]
+    m = float(np.median(np.abs(fin))) if fin.size else 0.0
     # 2% of the loss gained by training, after the 2% error barrier under which
     # Frankle et al. (2020) call two networks linearly connected (from memory)
-    return float(0.1 * (np.median(np.abs(fin)) if fin.size else 0.0) + 0.02 * drop)
+    return float(0.1 * m + 0.02 * min(max(drop, 0.0), 5.0 * m))
 
 
 class _Pairs:
@@ -191,6 +198,8 @@ def connect_runs(
     code = np.where((code == 0) & ~finite, DIVERGED_LABEL, code)
     cand = np.flatnonzero(code == 0)
     cand = cand[np.argsort(loss[cand], kind="stable")]
+    if cand.size:
+        warn_if_not_symmetric(syms, problem, pts[cand[0]])
     if tolerance is None:
         tolerance = default_tolerance(loss[cand], drop)
         if not tolerance > 0:
@@ -238,8 +247,13 @@ def connect_runs(
         if gid >= 0:
             a, b = find(first_rep.setdefault(gid, r)), find(r)
             parent[max(a, b)] = min(a, b)
+    rep_loss = np.array(
+        [registry.losses[r] if rep_row[r] < 0 else loss[rep_row[r]] for r in range(nreps)]
+    ).reshape(nreps)
     for i in range(cand.size):
-        hit = np.flatnonzero(rows[i] <= tol)
+        # A chain joins two groups only through an end point at their level: a run that
+        # stopped high on a slope reaches both valleys downhill without a barrier.
+        hit = np.flatnonzero((rows[i] <= tol) & (np.abs(rep_loss - loss[cand[i]]) <= tol))
         for r in hit[1:]:
             a, b = find(int(hit[0])), find(int(r))
             if a != b:
@@ -275,7 +289,11 @@ def connect_runs(
             ],
             axis=1,
         )
-        np.minimum.at(barrier, label[cand], colmin)
+        # Between groups, only end points at their group's lowest level count: one that
+        # stopped high on a slope reaches the other valley downhill, with no barrier.
+        floor = np.array([loss[cand][label[cand] == j].min() for j in range(g)])
+        level = loss[cand] - floor[label[cand]] <= tol
+        np.minimum.at(barrier, label[cand][level], colmin[level])
         barrier = np.minimum(barrier, barrier.T)
     count = np.array([np.sum(label == j) for j in range(g)], dtype=np.int64)
     total = max(label.size, 1)

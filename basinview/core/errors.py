@@ -64,6 +64,11 @@ class MinimaWarning(UserWarning):
     """find_minima found no critical point, or its result may mislead; the message names the fixes."""
 
 
+class SymmetryWarning(MinimaWarning):
+    """A declared symmetry changes the loss: it is not a symmetry of this model, so
+    grouping modulo it would merge points that differ."""
+
+
 class LossLintWarning(UserWarning):
     """A pattern in the loss that runs without error but can give a wrong answer.
 

@@ -151,12 +151,17 @@ class CriticalPointRegistry:
         points: np.ndarray,
         loss: Any = None,
         kind: Any = None,
+        align: Any = None,
     ) -> np.ndarray:
         """Registry indices of ``points`` (``(K, n)``), registering new ones in the order given.
 
         Args:
             points: locations (flat parameter vectors).
             loss, kind: optional ``(K,)`` loss and type, recorded for new points.
+            align: optional ``align(p, q) -> p'``, the copy of ``p`` nearest ``q``
+                under declared symmetries; each point is compared with every
+                registered point through it, so a symmetric copy of a known
+                point keeps that point's letter. Points are stored as given.
 
         Returns:
             ``(K,)`` indices; ``letter(i)`` names index ``i`` and ``i`` is its
@@ -171,7 +176,12 @@ class CriticalPointRegistry:
         taken: set[int] = set()
         for i, p in enumerate(pts):
             if len(self) and np.all(np.isfinite(p)):
-                dist = np.linalg.norm(self._points - p, axis=1)
+                seen = (
+                    np.broadcast_to(p, self._points.shape)
+                    if align is None
+                    else np.array([np.asarray(align(p, q), dtype=np.float64) for q in self._points])
+                )
+                dist = np.linalg.norm(self._points - seen, axis=1)
                 norms = np.linalg.norm(self._points, axis=1)
                 tol = self.rtol * np.maximum(np.maximum(norms, np.linalg.norm(p)), length)
                 for j in np.argsort(dist, kind="stable"):

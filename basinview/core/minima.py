@@ -45,7 +45,7 @@ from .identities import critical_points, default_rtol, length_scale
 from .intervals import wilson_interval
 from .problem import Problem
 from .stationary import CriticalPoint, classify, refine, refine_point
-from .symmetries import resolve_symmetries
+from .symmetries import resolve_symmetries, warn_if_not_symmetric
 
 __all__ = [
     "DIVERGED_LABEL",
@@ -284,8 +284,9 @@ def find_minima(
             are better grouped by :func:`~basinview.core.connect_runs`.
         symmetries: declared symmetries (:mod:`basinview.core.symmetries`):
             end points and refined points are compared modulo them (each is
-            moved to its copy nearest the other), registry letters are given
-            to canonical copies, and ``Minima.copies`` counts the copies merged.
+            moved to its copy nearest the other), a copy of a point named in
+            an earlier call keeps that point's letter, and ``Minima.copies``
+            counts the copies merged.
 
     Warns:
         MinimaWarning: when no point is found although there were runs; the
@@ -311,6 +312,8 @@ def find_minima(
     ends = np.asarray(runs.final, dtype=np.float64)
     final_loss = np.asarray(runs.final_loss, dtype=np.float64)
     conv = np.flatnonzero(usable & np.all(np.isfinite(ends), axis=1) & np.isfinite(final_loss))
+    if conv.size:
+        warn_if_not_symmetric(syms, problem, ends[conv[np.argmin(final_loss[conv])]])
     scale = length_scale(ends[conv], problem.theta0)
     fl = final_loss[conv]
     fscale = float(np.ptp(fl)) if fl.size and np.ptp(fl) > 0 else 1.0
@@ -368,8 +371,9 @@ def find_minima(
     points = np.array([cp.point for cp, _ in pts]).reshape(len(pts), n)
     loss = np.array([cp.loss for cp, _ in pts], dtype=np.float64)
     kind = np.array([cp.kind for cp, _ in pts], dtype=object)
-    named = points if syms is None else np.array([syms.canonical(p)[0] for p in points])
-    ids = critical_points(problem).identify(named.reshape(len(pts), n), loss, kind)
+    # a symmetric copy of a point named in an earlier call keeps that point's letter
+    align = None if syms is None else (lambda p, q: syms.align(p, q)[0])
+    ids = critical_points(problem).identify(points.reshape(len(pts), n), loss, kind, align=align)
     copies = None
     if syms is not None:
         copies = np.zeros(len(pts), dtype=np.int64)

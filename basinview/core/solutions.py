@@ -56,6 +56,11 @@ class SolutionRegistry:
         return self._points.copy()
 
     @property
+    def losses(self) -> np.ndarray:
+        """End loss of each representative."""
+        return np.asarray(self._loss, dtype=np.float64)
+
+    @property
     def owners(self) -> list[int]:
         """Group id of each representative (aliases resolved)."""
         return [self.find(i) for i in self._owner]

@@ -78,26 +78,55 @@ def _eig_tol(dtype: Any) -> float:
     return 1e-8 if np.dtype(dtype) == np.float64 else 1e-4  # common practice: ~ sqrt(eps)
 
 
+def _inertia_extremes(h: np.ndarray) -> tuple[float, float]:
+    """Extreme eigenvalues of ``D H D`` with ``D = diag(|H_ii|^-1/2)`` (1 where ``H_ii = 0``).
+
+    By Sylvester's law of inertia ``D H D`` has as many positive, negative and
+    zero eigenvalues as ``H``, but parameters in very different units (a slope
+    per day next to an offset) no longer make a well-determined small
+    eigenvalue look like zero next to a large one.
+    """
+    d = np.abs(np.diag(h))
+    scale = np.where(d > 0, 1.0 / np.sqrt(np.where(d > 0, d, 1.0)), 1.0)
+    values = np.linalg.eigvalsh(h * scale[:, None] * scale[None, :])
+    return float(values[0]), float(values[-1])
+
+
 def classify(problem: Problem, theta: Any) -> CriticalPoint:
     """Type of the critical point at ``theta`` from the signs of its Hessian eigenvalues.
 
     ``minimum`` if every eigenvalue is positive, ``maximum`` if every one is
     negative, ``saddle`` if both signs occur, ``degenerate`` if the smallest
     eigenvalue in magnitude is zero to within ``sqrt(eps)`` of the largest
-    (the second-order test cannot decide). The test assumes ``theta`` is a
+    (the second-order test cannot decide). Up to
+    :data:`~basinview.core.curvature.EXACT_LIMIT` parameters the signs are read
+    from the Jacobi-scaled Hessian ``D H D`` (same signs, by Sylvester's law of
+    inertia), so the test does not depend on the parameters' units; above it,
+    from the Lanczos extremes of ``H``. The test assumes ``theta`` is a
     stationary point (see :func:`refine_point`).
+
+    References:
+        Golub, G. H. & Van Loan, C. F. (2013). Matrix Computations, 4th ed.,
+        Theorem 8.1.17 (Sylvester's law of inertia).
     """
     flat = problem.flatten(theta, what="point")
     value, grad = problem.value_and_grad(flat)
-    spec = hessian_spectrum(problem, flat, k=1)
-    lo, hi = spec.lambda_min, spec.lambda_max
-    scale = max(abs(lo), abs(hi), 1e-300)
+    if problem.size <= EXACT_LIMIT:
+        h = hessian_matrix(problem, flat)
+        values = np.linalg.eigvalsh(h)
+        lo, hi = float(values[0]), float(values[-1])
+        test_lo, test_hi = _inertia_extremes(h)
+    else:
+        spec = hessian_spectrum(problem, flat, k=1)
+        lo, hi = spec.lambda_min, spec.lambda_max
+        test_lo, test_hi = lo, hi
+    scale = max(abs(test_lo), abs(test_hi), 1e-300)
     tol = _eig_tol(problem.dtype) * scale
-    if lo > tol:
+    if test_lo > tol:
         kind = "minimum"
-    elif hi < -tol:
+    elif test_hi < -tol:
         kind = "maximum"
-    elif lo < -tol and hi > tol:
+    elif test_lo < -tol and test_hi > tol:
         kind = "saddle"
     else:
         kind = "degenerate"

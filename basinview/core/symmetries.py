@@ -49,6 +49,8 @@ References:
 
 from __future__ import annotations
 
+import warnings
+
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -56,7 +58,7 @@ from typing import Any
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
-from .errors import ParameterError
+from .errors import ParameterError, SymmetryWarning
 
 __all__ = [
     "Symmetries",
@@ -66,6 +68,7 @@ __all__ = [
     "periodic",
     "resolve_symmetries",
     "sign_flip",
+    "warn_if_not_symmetric",
 ]
 
 _KINDS = ("periodic", "exchangeable", "sign_flip", "hidden_units", "signed_units")
@@ -368,6 +371,32 @@ class Symmetries:
             f = float(problem.value(y.astype(problem.dtype)))
             worst = max(worst, abs(f - f0) / max(abs(f0), 1e-300))
         return worst
+
+
+#: Largest relative change of the loss a declared symmetry may cause before it is called wrong.
+SYMMETRY_RTOL = 1e-3
+
+
+def warn_if_not_symmetric(syms: Symmetries | None, problem: Any, x: Any) -> float:
+    """Check the declared symmetries at ``x``; warn (:class:`SymmetryWarning`) if they change the loss.
+
+    Returns the largest relative change seen over eight random copies (0.0
+    when nothing is declared).
+    """
+    if syms is None or not np.all(np.isfinite(np.asarray(x, dtype=np.float64))):
+        return 0.0
+    worst = syms.check(problem, x, copies=8)
+    if not worst <= SYMMETRY_RTOL:
+        warnings.warn(
+            f"the declared symmetries change the loss by {worst:.3g} (relative) at the lowest "
+            "end point, so they are not symmetries of this loss and grouping modulo them "
+            "merges points that differ. Check each declaration (e.g. a sign change that only "
+            "leaves the loss unchanged together with a shift of another parameter is not a "
+            "plain sign_flip), or drop symmetries=.",
+            SymmetryWarning,
+            stacklevel=3,
+        )
+    return worst
 
 
 def resolve_symmetries(problem: Any, symmetries: Any) -> Symmetries | None:
