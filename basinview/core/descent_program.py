@@ -18,7 +18,7 @@ import jax.numpy as jnp
 
 from .optimizers import Oracle, UpdateRule
 from .sharding import shard_batch
-from .sharpness import SharpnessTracking, top_eigenpair
+from .sharpness import SharpnessTracking, loop_tracker
 
 __all__ = ["LoopState", "Records", "RunState", "build_program"]
 
@@ -104,7 +104,6 @@ def build_program(
     ``tracking.every`` steps (see :mod:`basinview.core.sharpness`).
     """
     vg = jax.value_and_grad(flat_loss)
-    measure = _sharpness_measure(flat_loss, rule, tracking)
 
     def batched(fn: Callable[..., Any], *args: Any) -> Any:
         if not group or group >= n_runs:
@@ -193,21 +192,14 @@ def build_program(
         def series(first: jax.Array, length: int) -> jax.Array:
             return jnp.full((length, n_runs), jnp.nan, first.dtype).at[0].set(first)
 
-        n_rec = 0 if tracking is None else n_steps // tracking.every + 1
-        empty = jnp.full((n_rec, n_runs), jnp.nan, theta0.dtype)
-        probes: Any = ()
-        sharp0 = empty
-        if tracking is not None:
-            probes, lam0 = batched(
-                lambda rs, h: measure.first(rs, h, data), runs0, hyper
-            )
-            sharp0 = empty.at[0].set(lam0)
+        tracker = loop_tracker(flat_loss, rule, tracking, batched, n_runs, n_steps)
+        probes, sharp0, pre0 = tracker.start(runs0.theta, hyper, data)
         records = Records._make(
             [
                 *(series(x, n_steps + 1) for x in row0[:5]),
                 jnp.full((n_steps, n_runs), jnp.nan, theta0.dtype),  # cosine
                 sharp0,
-                empty,
+                pre0,
             ]
         )
         init = LoopState(jnp.int32(0), runs0, records, probes)
@@ -229,12 +221,10 @@ def build_program(
                     rec.pre_sharpness,
                 ]
             )
-            probes = ls.probes
-            if tracking is not None:
-                probes, records = _track(
-                    measure, tracking, batched, k + 1, ls.runs.running, runs, hyper, probes,
-                    records, data,
-                )  # fmt: skip
+            probes, sharp, pre = tracker.step(
+                k, ls.runs, runs, hyper, ls.probes, rec.sharpness, rec.pre_sharpness, data
+            )
+            records = records._replace(sharpness=sharp, pre_sharpness=pre)
             return LoopState(k + 1, runs, records, probes)
 
         end = jax.lax.while_loop(cond, body, init)
@@ -250,97 +240,3 @@ def build_program(
     out_batch = (0, 0, 0, 1) if rule.preconditioner is None else (0, 0, 0, 1, 0)
     return shard_batch(program, devices, in_batch, out_batch)
 
-
-class _Measure(NamedTuple):
-    """One run's sharpness records: the first (cold) one and the later (warm) ones."""
-
-    first: Callable[..., Any]
-    later: Callable[..., Any]
-
-
-def _sharpness_measure(
-    flat_loss: Callable[..., jax.Array], rule: UpdateRule, tracking: SharpnessTracking | None
-) -> _Measure | None:
-    """Per-run functions estimating the sharpness (and the preconditioned one) at an iterate.
-
-    ``first(rs, hyper, data) -> (probes, lambda)`` at iterate 0 (cold start,
-    no preconditioned value: the rule's state has no ``P`` yet);
-    ``later(rs, hyper, probes, cold_pre, data) -> (probes, lambda, lambda_pre)``
-    warm-started from ``probes``; ``cold_pre`` (static) gives the preconditioned
-    estimate the cold budget (its first record).
-    """
-    if tracking is None:
-        return None
-    grad = jax.grad(flat_loss)
-    adaptive = rule.preconditioner is not None
-
-    def hvp(theta: jax.Array, v: jax.Array, data: Any) -> jax.Array:
-        return jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
-
-    def start_vector(theta: jax.Array) -> jax.Array:
-        # a fixed random start (the same for every run: results do not depend on the seed)
-        return jax.random.normal(jax.random.key(20260), theta.shape, theta.dtype)
-
-    def first(rs: Any, hyper: Any, data: Any) -> tuple[Any, jax.Array]:
-        v0 = start_vector(rs.theta)
-        lam, v = top_eigenpair(lambda q: hvp(rs.theta, q, data), v0, tracking.first_iterations)
-        return ((v, v0) if adaptive else (v,)), lam
-
-    def later(rs: Any, hyper: Any, probes: Any, cold_pre: bool, data: Any) -> tuple[Any, ...]:
-        theta = rs.theta
-        lam, v = top_eigenpair(lambda q: hvp(theta, q, data), probes[0], tracking.iterations)
-        if not adaptive:
-            return (v,), lam, jnp.array(jnp.nan, theta.dtype)
-        assert rule.preconditioner is not None
-        scale = jax.lax.rsqrt(rule.preconditioner(rs.opt_state, hyper))
-        steps = tracking.first_iterations if cold_pre else tracking.iterations
-        lam_p, vp = top_eigenpair(lambda q: scale * hvp(theta, scale * q, data), probes[1], steps)
-        return (v, vp), lam, lam_p
-
-    return _Measure(first, later)
-
-
-def _track(
-    measure: Any,
-    tracking: SharpnessTracking,
-    batched: Callable[..., Any],
-    it: jax.Array,
-    on: jax.Array,
-    runs: RunState,
-    hyper: Any,
-    probes: Any,
-    records: Records,
-    data: Any,
-) -> tuple[Any, Records]:
-    """Record the sharpness of every running run at iterate ``it`` when ``it`` is a record step.
-
-    The predicate depends on the step only (the same for every run), so the
-    skipped branch costs nothing.
-    """
-
-    def record(cold_pre: bool) -> Callable[[Any], tuple[Any, Records]]:
-        def go(operand: Any) -> tuple[Any, Records]:
-            probes, records = operand
-            new, lam, lam_p = batched(
-                lambda rs, h, p: measure.later(rs, h, p, cold_pre, data), runs, hyper, probes
-            )
-            j = it // tracking.every
-            nan = jnp.array(jnp.nan, lam.dtype)
-            kept = jax.tree_util.tree_map(
-                lambda a, b: jnp.where(on.reshape((-1,) + (1,) * (a.ndim - 1)), a, b), new, probes
-            )
-            return kept, records._replace(
-                sharpness=records.sharpness.at[j].set(jnp.where(on, lam, nan)),
-                pre_sharpness=records.pre_sharpness.at[j].set(jnp.where(on, lam_p, nan)),
-            )
-
-        return go
-
-    def skip(operand: Any) -> tuple[Any, Records]:
-        return operand
-
-    due = it % tracking.every == 0
-    if len(probes) == 1:  # no preconditioner: one kind of record
-        return jax.lax.cond(due, record(False), skip, (probes, records))
-    branch = jnp.where(due, jnp.where(it == tracking.every, 2, 1), 0)
-    return jax.lax.switch(branch, [skip, record(False), record(True)], (probes, records))
