@@ -300,3 +300,20 @@ def test_bad_tracking_arguments(quad64):
     untracked = dataclasses.replace(runs, sharpness=None, sharpness_steps=None)
     with pytest.raises(ParameterError, match="sharpness_every"):
         untracked.sharpness_table
+
+
+def test_sharpness_figure_draws_each_rates_threshold(quad64):
+    from basinview.figures import sharpness_figure
+
+    prob, a, starts = quad64
+    with jax.enable_x64(True):
+        runs = descend(prob, starts, learning_rate=[0.01, 0.05], steps=30, sharpness_every=5)
+    fig = sharpness_figure(runs)
+    lines = [t for t in fig.data if t.line.dash == "dash"]
+    # one dashed line per distinct rate, at 2 / lr (Source: REFERENCES C1)
+    assert sorted(t.y[0] for t in lines) == pytest.approx([2 / 0.05, 2 / 0.01])
+    curves = [t for t in fig.data if t.line.dash != "dash"]
+    assert len(curves) == 4
+    np.testing.assert_allclose(curves[0].y, runs.sharpness[0])
+    with pytest.raises(ParameterError, match="preconditioner"):
+        sharpness_figure(runs, quantity="preconditioned")

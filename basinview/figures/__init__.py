@@ -15,6 +15,7 @@ from .curves import REGIME_COLOURS, loss_curves_figure, step_size_figure
 from .instruments import curved_path_figure, density_figure, trajectory_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
+from .sharpness import sharpness_figure
 from .slices import relief_figure, slice_caution, slice_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
 
@@ -33,6 +34,7 @@ __all__ = [
     "loss_curves_figure",
     "profile_figure",
     "relief_figure",
+    "sharpness_figure",
     "slice_caution",
     "slice_figure",
     "step_size_figure",
