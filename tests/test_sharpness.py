@@ -239,7 +239,7 @@ def test_gradient_descent_on_a_network_sharpens_to_two_over_lr():
 
 
 def test_traced_values_do_not_recompile(quad64):
-    prob, a, starts = quad64
+    prob, _, starts = quad64
     with jax.enable_x64(True):
         descend(prob, starts, learning_rate=[0.01, 0.05], steps=30, sharpness_every=5)
         with count_compilations() as c:
@@ -289,7 +289,7 @@ def test_thresholds(rule, hyper, expected, quantity):
 
 
 def test_bad_tracking_arguments(quad64):
-    prob, a, starts = quad64
+    prob, _, starts = quad64
     with jax.enable_x64(True):
         for bad in (-1, 2.5, True, 31):
             with pytest.raises(ParameterError, match="sharpness_every"):
@@ -299,13 +299,13 @@ def test_bad_tracking_arguments(quad64):
         runs = descend(prob, starts, learning_rate=[0.01, 0.05], steps=30, sharpness_every=5)
     untracked = dataclasses.replace(runs, sharpness=None, sharpness_steps=None)
     with pytest.raises(ParameterError, match="sharpness_every"):
-        untracked.sharpness_table
+        _ = untracked.sharpness_table
 
 
 def test_sharpness_figure_draws_each_rates_threshold(quad64):
     from basinview.figures import sharpness_figure
 
-    prob, a, starts = quad64
+    prob, _, starts = quad64
     with jax.enable_x64(True):
         runs = descend(prob, starts, learning_rate=[0.01, 0.05], steps=30, sharpness_every=5)
     fig = sharpness_figure(runs)

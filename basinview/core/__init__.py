@@ -90,6 +90,7 @@ from .planes import Plane, axes_plane, random_plane, through_plane
 from .problem import Problem
 from .settings import SCHEMA_VERSION, Settings, library_versions, record_settings
 from .sharding import use_all_cores
+from .sharpness import SharpnessTracking, sharpness_frame, sharpness_threshold
 from .starts import (
     Starts,
     combine_starts,
@@ -154,6 +155,7 @@ __all__ = [
     "Runs",
     "Settings",
     "SettingsError",
+    "SharpnessTracking",
     "SpectralDensity",
     "Spectrum",
     "Starts",
@@ -193,8 +195,6 @@ __all__ = [
     "get_rule",
     "grid_starts",
     "hessian_density",
-    "starts_for_precision",
-    "wilson_interval",
     "hessian_matrix",
     "hessian_plane",
     "hessian_spectrum",
@@ -214,9 +214,12 @@ __all__ = [
     "run_padding_floor",
     "segment_profile",
     "sequential_bound",
+    "sharpness_frame",
+    "sharpness_threshold",
     "span_ranges",
     "stability_bound",
     "standard_errors",
+    "starts_for_precision",
     "starts_from_spec",
     "step_size_sweep",
     "through_plane",
@@ -224,4 +227,5 @@ __all__ = [
     "upgrade_record",
     "upgrade_settings",
     "use_all_cores",
+    "wilson_interval",
 ]

@@ -398,7 +398,9 @@ def _assemble(
         j = steps // track.every + 1
         sharp = {
             "sharpness": rec["sharpness"][:, :j],
-            "preconditioned_sharpness": rec["pre_sharpness"][:, :j] if precond is not None else None,
+            "preconditioned_sharpness": rec["pre_sharpness"][:, :j]
+            if precond is not None
+            else None,
             "sharpness_steps": track.steps(steps),
         }
     return Runs(

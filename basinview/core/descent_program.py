@@ -239,4 +239,3 @@ def build_program(
     in_batch = (0, 0, 0, None, 0, None)
     out_batch = (0, 0, 0, 1) if rule.preconditioner is None else (0, 0, 0, 1, 0)
     return shard_batch(program, devices, in_batch, out_batch)
-

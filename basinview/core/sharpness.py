@@ -124,7 +124,9 @@ def _count(value: Any, name: str, low: int, high: int, hint: str) -> int:
         or not isinstance(value, (int, np.integer))
         or not low <= value <= high
     ):
-        raise ParameterError(f"{name} must be an integer from {low} to {high}; got {value!r}. {hint}")
+        raise ParameterError(
+            f"{name} must be an integer from {low} to {high}; got {value!r}. {hint}"
+        )
     return int(value)
 
 
@@ -132,7 +134,9 @@ def sharpness_tracking(
     every: Any, iterations: Any = 3, first_iterations: Any = None, *, steps: int
 ) -> SharpnessTracking | None:
     """Validated :class:`SharpnessTracking` (None when ``every`` is 0 or None: no tracking)."""
-    if every is None or (isinstance(every, (int, np.integer)) and not isinstance(every, bool) and every == 0):
+    if every is None or (
+        isinstance(every, (int, np.integer)) and not isinstance(every, bool) and every == 0
+    ):
         return None
     k = _count(
         every,
@@ -259,7 +263,7 @@ def loop_tracker(
             empty = jnp.full((0, n_runs), jnp.nan, theta.dtype)
             return (), empty, empty
 
-        def step_off(k, before, after, hyper, probes, sharp, pre, data):  # noqa: ANN001, ANN202
+        def step_off(k, before, after, hyper, probes, sharp, pre, data):
             return probes, sharp, pre
 
         return LoopTracker(start_off, step_off)
@@ -272,7 +276,7 @@ def loop_tracker(
     def hvp(theta: jax.Array, v: jax.Array, data: Any) -> jax.Array:
         return jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
 
-    def measure(theta, opt_state, hyper, probes, steps, steps_pre, data):  # noqa: ANN001, ANN202
+    def measure(theta, opt_state, hyper, probes, steps, steps_pre, data):
         """One run: ``(probes, lambda, lambda_pre)`` warm-started from ``probes``."""
         if not adaptive:
             lam, v = top_eigenpair(lambda q: hvp(theta, q, data), probes[0], steps, m0)
@@ -303,7 +307,7 @@ def loop_tracker(
             sharp = sharp.at[0].set(lam)
         return probes, sharp, jnp.full((n_rec, n_runs), jnp.nan, theta.dtype)
 
-    def step(k, before, after, hyper, probes, sharp, pre, data):  # noqa: ANN001, ANN202
+    def step(k, before, after, hyper, probes, sharp, pre, data):
         first = (k == 0) if first_in_loop else jnp.array(False)
         due = ((k + 1) % every == 0) | first
 

@@ -160,12 +160,12 @@ def sharpness_figure(
                     "uid": uid("sharpness", "threshold", r),
                 }
             )
-    y_title = (
-        "preconditioned sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
-    )
+    y_title = "preconditioned sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
     track = runs.config.sharpness if runs.config is not None else None
     every = track.every if track is not None else int(steps[1] - steps[0]) if steps.size > 1 else 1
-    sub = f"{runs.rule}; estimated every {every} steps inside the runs; dashed: each rate's threshold"
+    sub = (
+        f"{runs.rule}; estimated every {every} steps inside the runs; dashed: each rate's threshold"
+    )
     layout = base_layout(title or "Sharpness along the runs", sub)
     layout["xaxis"] = {"title": {"text": "step"}}
     layout["yaxis"] = {"title": {"text": y_title}, "rangemode": "tozero"}
