@@ -317,3 +317,21 @@ def test_sharpness_figure_draws_each_rates_threshold(quad64):
     np.testing.assert_allclose(curves[0].y, runs.sharpness[0])
     with pytest.raises(ParameterError, match="preconditioner"):
         sharpness_figure(runs, quantity="preconditioned")
+
+
+def test_report_places_sharpness_and_density(quad64):
+    from basinview.core import Analysis, hessian_density
+    from basinview.report import report_html, summary_lines
+
+    prob, a, starts = quad64
+    with jax.enable_x64(True):
+        runs = descend(prob, starts, learning_rate=[0.01, 0.05], steps=30, sharpness_every=5)
+        density = hessian_density(prob, runs.final[0], probes=2, steps=24)
+    analysis = Analysis(runs=runs, density=density, density_at="end of run 0")
+    lines, _ = summary_lines(analysis)
+    text = " ".join(lines)
+    assert "Sharpness along the runs (every 5 steps)" in text
+    # the quadratic's Hessian has negative eigenvalues (numpy.linalg.eigvalsh above)
+    assert np.linalg.eigvalsh(a)[0] < 0 and "not a minimum of the model" in text
+    page = report_html(analysis)
+    assert "bv-sharpness" in page and "bv-density" in page
