@@ -67,7 +67,7 @@ def _sharpness(problem: Any, starts: np.ndarray, steps: int, repeats: int) -> di
             "runs": int(starts.shape[0]),
             "steps": steps,
             "sharpness_every": 10,
-            "sharpness_iterations": 3,
+            "sharpness_iterations": 2,
             "plain": plain.summary(),
             "tracked": tracked.summary(),
             "ratio": _ratio(tracked, plain),

@@ -153,7 +153,7 @@ def descend(
     tune: bool = False,
     sizes: Mapping[str, int] | None = None,
     sharpness_every: int = 0,
-    sharpness_iterations: int = 3,
+    sharpness_iterations: int = 2,
 ) -> Runs:
     """Run an update rule from many starts and hyper-parameter settings at once.
 

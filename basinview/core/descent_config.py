@@ -192,7 +192,7 @@ def descent_config(
     tune: Any = False,
     sizes: Any = None,
     sharpness_every: Any = 0,
-    sharpness_iterations: Any = 3,
+    sharpness_iterations: Any = 2,
 ) -> DescentConfig:
     """Validate the arguments of :func:`~basinview.core.descend` into a :class:`DescentConfig`.
 

@@ -45,7 +45,7 @@ Early in an Adam or RMSProp run ``P`` moves by several percent per step, so
 the preconditioned operator changes more between records than ``H`` does:
 3 steps per record lagged by up to 0.7% there (measured on a 24-parameter
 quadratic, 10 steps apart), 6 steps by 1e-4; raise ``sharpness_iterations``
-when that matters.
+(default 2) when that matters.
 
 References:
     Cohen, J. M., Kaur, S., Li, Y., Kolter, J. Z. & Talwalkar, A. (2021).
@@ -103,7 +103,7 @@ class SharpnessTracking:
     """
 
     every: int
-    iterations: int = 3
+    iterations: int = 2
     first_iterations: int = 16
 
     def record(self) -> dict[str, int]:
@@ -131,7 +131,7 @@ def _count(value: Any, name: str, low: int, high: int, hint: str) -> int:
 
 
 def sharpness_tracking(
-    every: Any, iterations: Any = 3, first_iterations: Any = None, *, steps: int
+    every: Any, iterations: Any = 2, first_iterations: Any = None, *, steps: int
 ) -> SharpnessTracking | None:
     """Validated :class:`SharpnessTracking` (None when ``every`` is 0 or None: no tracking)."""
     if every is None or (
@@ -151,7 +151,7 @@ def sharpness_tracking(
         "sharpness_iterations",
         1,
         MAX_ITERATIONS,
-        "Each record costs this many Hessian-vector products per run; 3-6 is usual.",
+        "Each record costs this many Hessian-vector products per run; 2-6 is usual.",
     )
     m0 = max(16, 4 * m) if first_iterations is None else first_iterations
     m0 = _count(
