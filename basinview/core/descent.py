@@ -269,9 +269,9 @@ def descend(
             per_device,
             steps_b,
             config.batch_size,
+            config.sharpness,
             devs,
             chosen.group,
-            config.sharpness,
         ),
         lambda: build_program(
             problem.flat_loss,
