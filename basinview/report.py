@@ -133,6 +133,7 @@ def summary_lines(analysis: Analysis) -> tuple[list[str], str]:
             f"Straight segment between the two lowest points: barrier {_fmt(profile.barrier)} "
             "above the higher end (an upper bound on the lowest barrier between them)."
         )
+    lines.extend(_instrument_lines(analysis))
     n = plane.size if plane is not None else None
     if n is not None and n > 2:
         caution = (
@@ -147,6 +148,41 @@ def summary_lines(analysis: Analysis) -> tuple[list[str], str]:
             "still cover only the span shown, and minima outside it are not seen."
         )
     return lines, caution
+
+
+def _instrument_lines(analysis: Analysis) -> list[str]:
+    """Summary sentences of the optional instruments: sharpness along runs, Hessian density."""
+    lines = []
+    runs, density = analysis.runs, analysis.density
+    if runs is not None and runs.sharpness is not None:
+        table = runs.sharpness_table
+        last = table.groupby("run").tail(1)
+        ratio = last["ratio"].to_numpy(dtype=float)
+        steps = runs.sharpness_steps
+        every = int(steps[1] - steps[0]) if len(steps) > 1 else 0
+        text = (
+            f"Sharpness along the runs (every {every} steps): last recorded "
+            f"{_fmt(np.nanmin(last['sharpness']))} to "
+            f"{_fmt(np.nanmax(last['sharpness']))}"
+        )
+        if np.isfinite(ratio).any():
+            text += (
+                f"; {int(np.sum(ratio >= 0.9))} of {len(ratio)} runs end within 10% of or above "
+                "their stability threshold (the edge of stability)"
+            )
+        lines.append(text + ".")
+    if density is not None:
+        lines.append(
+            f"Hessian eigenvalue density at {analysis.density_at}: {100 * density.negative_mass:.3g}% "
+            f"of the mass below zero, trace about {_fmt(density.trace)}, "
+            f"{len(density.outliers)} outlier(s)"
+            + (
+                "; negative mass: this point is not a minimum of the model."
+                if density.negative_mass > 0
+                else "."
+            )
+        )
+    return lines
 
 
 def _check_analysis(analysis: Any) -> None:
@@ -270,6 +306,25 @@ def report_html(
             "The loss along the straight line between the two points, extended a little "
             "beyond each.",
             height=480,
+        )
+    if runs is not None and runs.sharpness is not None:
+        figure(
+            "sharpness",
+            "Sharpness along the runs",
+            F.sharpness_figure(runs),
+            "Top Hessian eigenvalue of each run, estimated inside the runs; dashed: each "
+            "learning rate's stability threshold. The threshold is local: crossing it need not "
+            "mean divergence.",
+            height=540,
+        )
+    if analysis.density is not None:
+        figure(
+            "density",
+            f"Hessian spectrum at {analysis.density_at}",
+            F.density_figure(analysis.density),
+            "Estimated density of all Hessian eigenvalues (stochastic Lanczos quadrature), "
+            "smoothed: features narrower than the kernel merge.",
+            height=500,
         )
     for i, (name, fig) in enumerate((figures or {}).items()):
         figure(f"extra-{i}", str(name), fig, "")

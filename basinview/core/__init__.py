@@ -101,6 +101,7 @@ from .schemes import SchemeComparison, compare_schemes
 from .segments import segment_barriers
 from .settings import SCHEMA_VERSION, Settings, library_versions, record_settings
 from .sharding import use_all_cores
+from .sharpness import SharpnessTracking, sharpness_frame, sharpness_threshold
 from .starts import (
     Starts,
     combine_starts,
@@ -166,7 +167,6 @@ __all__ = [
     "LossLintWarning",
     "Minima",
     "MinimaWarning",
-    "SymmetryWarning",
     "MixedPrecisionWarning",
     "NoCriticalPointError",
     "ParameterError",
@@ -182,6 +182,7 @@ __all__ = [
     "SchemeComparison",
     "Settings",
     "SettingsError",
+    "SharpnessTracking",
     "Solutions",
     "SpectralDensity",
     "Spectrum",
@@ -189,6 +190,7 @@ __all__ = [
     "StepSizeSweep",
     "Surface",
     "Symmetries",
+    "SymmetryWarning",
     "TrajectoryPlane",
     "UpdateRule",
     "View",
@@ -260,6 +262,8 @@ __all__ = [
     "shared_basin_map",
     "shared_runs",
     "shared_surface",
+    "sharpness_frame",
+    "sharpness_threshold",
     "sign_flip",
     "solution_groups",
     "span_ranges",

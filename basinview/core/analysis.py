@@ -28,6 +28,7 @@ import numpy as np
 
 from .basins import BasinMap, basin_map
 from .curvature import hessian_spectrum, stability_bound
+from .density import SpectralDensity, hessian_density
 from .descent import Runs, descend
 from .errors import ParameterError
 from .minima import Minima, find_minima
@@ -45,6 +46,7 @@ __all__ = [
     "View",
     "analyse",
     "compute_basins",
+    "compute_density",
     "compute_minima",
     "compute_profile",
     "compute_runs",
@@ -77,6 +79,8 @@ class Analysis:
         sweep: step-size sweep from the same starts.
         profile: the loss along the segment between the two lowest minima.
         profile_labels: the names of the profile's ends.
+        density: Hessian eigenvalue density at ``density_at`` (when asked).
+        density_at: the name of that point (a critical point's label, or "run N").
     """
 
     settings: Settings | None = None
@@ -89,6 +93,8 @@ class Analysis:
     sweep: StepSizeSweep | None = None
     profile: Profile | None = None
     profile_labels: tuple[str, str] | None = None
+    density: SpectralDensity | None = None
+    density_at: str | None = None
 
     def __post_init__(self) -> None:
         if self.plane is None:
@@ -120,8 +126,11 @@ def compute_surface(problem: Problem, view: ViewSpec, *, resolution: Any = None)
     )
 
 
-def compute_runs(problem: Problem, view: ViewSpec, *, min_runs: int = 1) -> Runs:
-    """Descent from the view's starts at every setting of its hyper-parameter grid."""
+def compute_runs(
+    problem: Problem, view: ViewSpec, *, min_runs: int = 1, sharpness_every: int = 0
+) -> Runs:
+    """Descent from the view's starts at every setting of its hyper-parameter grid
+    (``sharpness_every``: see :func:`~basinview.core.descend`)."""
     return descend(
         problem,
         view.starts,
@@ -137,7 +146,23 @@ def compute_runs(problem: Problem, view: ViewSpec, *, min_runs: int = 1) -> Runs
         seed=view.seed,
         min_runs=min_runs,
         sizes=view.sizes if "descent_runs_per_call" in view.sizes else None,
+        sharpness_every=sharpness_every,
     )
+
+
+def compute_density(
+    problem: Problem, runs: Runs, minima: Minima | None, *, probes: int = 4, steps: int = 60
+) -> tuple[SpectralDensity, str]:
+    """The Hessian eigenvalue density at the lowest minimum found (else the lowest run end)."""
+    lows = [] if minima is None else [i for i, k in enumerate(minima.kind) if k == "minimum"]
+    if minima is not None and lows:
+        i = min(lows, key=lambda j: float(minima.loss[j]))
+        point, name = minima.points[i], str(minima.labels[i])
+    else:
+        finite = np.where(np.isfinite(runs.final_loss), runs.final_loss, np.inf)
+        r = int(np.argmin(finite))
+        point, name = runs.final[r], f"end of run {r}"
+    return hessian_density(problem, point, probes=probes, steps=steps), name
 
 
 def compute_minima(problem: Problem, runs: Runs) -> Minima | None:
@@ -294,6 +319,8 @@ def analyse(
     profile: bool = True,
     optimizer: Any = None,
     initializers: dict[str, Callable[[Any], Any]] | None = None,
+    sharpness_every: int = 0,
+    density: bool = False,
 ) -> Analysis:
     """Compute one view: surface, runs, minima, basin map, sweep and profile.
 
@@ -308,6 +335,8 @@ def analyse(
             the predicted bound; 0 skips it.
         profile: the segment profile between the two first minima (when there are two).
         optimizer, initializers: as in :meth:`ViewSpec.from_settings` (Settings only).
+        sharpness_every: track each run's sharpness every this many steps (0: no).
+        density: the Hessian eigenvalue density at the lowest minimum (:func:`compute_density`).
 
     Returns:
         An :class:`Analysis` whose ``settings`` reproduce the view.
@@ -330,8 +359,9 @@ def analyse(
         recorded = upgrade_settings(problem, view)
         view = ViewSpec.from_settings(problem, view, optimizer=optimizer, initializers=initializers)
     surface = compute_surface(problem, view)
-    runs = compute_runs(problem, view)
+    runs = compute_runs(problem, view, sharpness_every=sharpness_every)
     found = compute_minima(problem, runs) if minima else None
+    spectrum = compute_density(problem, runs, found) if density else None
     basins = (
         compute_basins(problem, view, resolution=basin_resolution, learning_rate=basin_rate)
         if basin_resolution
@@ -354,6 +384,8 @@ def analyse(
         sweep=sweep,
         profile=None if seg is None else seg[0],
         profile_labels=None if seg is None else seg[1],
+        density=None if spectrum is None else spectrum[0],
+        density_at=None if spectrum is None else spectrum[1],
     )
 
 

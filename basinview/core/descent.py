@@ -152,6 +152,8 @@ def descend(
     min_runs: int = 1,
     tune: bool = False,
     sizes: Mapping[str, int] | None = None,
+    sharpness_every: int = 0,
+    sharpness_iterations: int = 2,
 ) -> Runs:
     """Run an update rule from many starts and hyper-parameter settings at once.
 
@@ -202,6 +204,14 @@ def descend(
         sizes: program sizes to use, as recorded in ``runs.config.sizes`` /
             ``Settings.sizes`` (``descent_runs_per_call``, ``descent_group``):
             recomputes a recorded view with the very same program.
+        sharpness_every: every this many steps (and at the start) estimate
+            each run's sharpness, the top Hessian eigenvalue, inside the loop
+            (for Adam and RMSProp also ``lambda_max(P^-1 H)``); 0: not
+            tracked. Static: another value compiles another program.
+            See :mod:`basinview.core.sharpness`; results in
+            ``Runs.sharpness`` and ``Runs.sharpness_table``.
+        sharpness_iterations: warm-started Lanczos steps (Hessian-vector
+            products) per record (static).
 
     Returns:
         :class:`Runs`, with ``.table`` as a pandas DataFrame.
@@ -231,6 +241,8 @@ def descend(
         min_runs=min_runs,
         tune=tune,
         sizes=sizes,
+        sharpness_every=sharpness_every,
+        sharpness_iterations=sharpness_iterations,
     )
     if plane is None:
         plane = default_plane(problem)
@@ -260,6 +272,7 @@ def descend(
             per_device,
             steps_b,
             config.batch_size,
+            config.sharpness,
             devs,
             chosen.group,
         ),
@@ -271,6 +284,7 @@ def descend(
             config.batch_size,
             devs,
             chosen.group,
+            config.sharpness,
         ),
     )
     with loss_runtime_errors(problem, "descent runs"):
@@ -382,6 +396,17 @@ def _assemble(
     steps = config.steps
     t1 = steps + 1
     names = scheme_of(start_set)
+    track = config.sharpness
+    sharp: dict[str, Any] = {}
+    if track is not None:
+        j = steps // track.every + 1
+        sharp = {
+            "sharpness": rec["sharpness"][:, :j],
+            "preconditioned_sharpness": rec["pre_sharpness"][:, :j]
+            if precond is not None
+            else None,
+            "sharpness_steps": track.steps(steps),
+        }
     return Runs(
         rule=rule.name,
         hyper=hyper_rows,
@@ -399,4 +424,5 @@ def _assemble(
         config=config,
         preconditioner=precond,
         scheme=None if names is None else names[start_index],
+        **sharp,
     )

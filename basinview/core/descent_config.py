@@ -21,6 +21,7 @@ import numpy as np
 from .cost_model import DescentSizes
 from .errors import ParameterError
 from .optimizers import UpdateRule, check_hyper
+from .sharpness import SharpnessTracking, sharpness_tracking
 
 __all__ = ["MAX_STEPS", "DescentConfig", "default_tolerances", "descent_config"]
 
@@ -58,6 +59,7 @@ class DescentConfig:
         tune: time a few vectorisation sizes instead of using the cost model.
         sizes: the program sizes the call ran with (None until it ran, or the
             recorded sizes to reuse).
+        sharpness: how sharpness is tracked along the runs (None: not tracked).
     """
 
     optimizer: str
@@ -71,6 +73,7 @@ class DescentConfig:
     min_runs: int = 1
     tune: bool = False
     sizes: DescentSizes | None = field(default=None)
+    sharpness: SharpnessTracking | None = None
 
     @property
     def learning_rate(self) -> tuple[float, ...]:
@@ -93,7 +96,7 @@ class DescentConfig:
 
     def record(self) -> dict[str, Any]:
         """The JSON-ready record of the call that Settings store (sorted distinct values)."""
-        return {
+        out = {
             "optimizer": self.optimizer,
             "learning_rate": sorted(set(self.learning_rate)),
             "hyper": {k: sorted(set(v)) for k, v in self.hyper.items() if k != "learning_rate"},
@@ -104,6 +107,9 @@ class DescentConfig:
             "batch_size": self.batch_size,
             "seed": self.seed,
         }
+        if self.sharpness is not None:
+            out["sharpness"] = self.sharpness.record()
+        return out
 
 
 def _positive_int(name: str, value: Any, low: int, high: int, hint: str) -> int:
@@ -185,6 +191,8 @@ def descent_config(
     min_runs: Any,
     tune: Any = False,
     sizes: Any = None,
+    sharpness_every: Any = 0,
+    sharpness_iterations: Any = 2,
 ) -> DescentConfig:
     """Validate the arguments of :func:`~basinview.core.descend` into a :class:`DescentConfig`.
 
@@ -228,4 +236,5 @@ def descent_config(
         min_runs=min_runs,
         tune=bool(tune),
         sizes=DescentSizes.from_record(sizes) if sizes is not None else None,
+        sharpness=sharpness_tracking(sharpness_every, sharpness_iterations, steps=steps),
     )

@@ -18,6 +18,7 @@ import jax.numpy as jnp
 
 from .optimizers import Oracle, UpdateRule
 from .sharding import shard_batch
+from .sharpness import SharpnessTracking, loop_tracker
 
 __all__ = ["LoopState", "Records", "RunState", "build_program"]
 
@@ -50,7 +51,8 @@ class Row(NamedTuple):
 
 
 class Records(NamedTuple):
-    """Recorded series, ``(T + 1, runs)`` each (``cosine``: ``(T, runs)``)."""
+    """Recorded series, ``(T + 1, runs)`` each (``cosine``: ``(T, runs)``; the
+    sharpness records ``(T // k + 1, runs)``, or ``(0, runs)`` when not tracked)."""
 
     loss: jax.Array
     grad_norm: jax.Array
@@ -58,6 +60,8 @@ class Records(NamedTuple):
     b: jax.Array
     off_plane: jax.Array
     cosine: jax.Array
+    sharpness: jax.Array
+    pre_sharpness: jax.Array
 
 
 class LoopState(NamedTuple):
@@ -66,6 +70,7 @@ class LoopState(NamedTuple):
     step: jax.Array
     runs: RunState
     records: Records
+    probes: Any  # sharpness tracking: (vector, preconditioned vector) per run, or ()
 
 
 class Shared(NamedTuple):
@@ -87,6 +92,7 @@ def build_program(
     batch: int | None,
     devices: tuple[Any, ...],
     group: int = 0,
+    tracking: SharpnessTracking | None = None,
 ) -> Any:
     """Compile-once function running ``n_runs`` runs per device for up to ``n_steps`` steps.
 
@@ -94,6 +100,8 @@ def build_program(
     and returns ``(final theta, status codes, stop steps, Records[,
     preconditioner])``. Runs are vectorised ``group`` at a time (0: all).
     With several devices each device runs its share in its own loop.
+    With ``tracking``, the loop also records the sharpness every
+    ``tracking.every`` steps (see :mod:`basinview.core.sharpness`).
     """
     vg = jax.value_and_grad(flat_loss)
 
@@ -184,13 +192,17 @@ def build_program(
         def series(first: jax.Array, length: int) -> jax.Array:
             return jnp.full((length, n_runs), jnp.nan, first.dtype).at[0].set(first)
 
+        tracker = loop_tracker(flat_loss, rule, tracking, batched, n_runs, n_steps)
+        probes, sharp0, pre0 = tracker.start(runs0.theta, hyper, data)
         records = Records._make(
             [
                 *(series(x, n_steps + 1) for x in row0[:5]),
                 jnp.full((n_steps, n_runs), jnp.nan, theta0.dtype),  # cosine
+                sharp0,
+                pre0,
             ]
         )
-        init = LoopState(jnp.int32(0), runs0, records)
+        init = LoopState(jnp.int32(0), runs0, records, probes)
 
         def cond(ls: LoopState) -> jax.Array:
             return (ls.step < sh.max_steps) & jnp.any(ls.runs.running)
@@ -205,9 +217,15 @@ def build_program(
                 [
                     *(r.at[k + 1].set(x) for r, x in zip(rec[:5], row[:5])),
                     rec.cosine.at[k].set(row.cosine),
+                    rec.sharpness,
+                    rec.pre_sharpness,
                 ]
             )
-            return LoopState(k + 1, runs, records)
+            probes, sharp, pre = tracker.step(
+                k, ls.runs, runs, hyper, ls.probes, rec.sharpness, rec.pre_sharpness, data
+            )
+            records = records._replace(sharpness=sharp, pre_sharpness=pre)
+            return LoopState(k + 1, runs, records, probes)
 
         end = jax.lax.while_loop(cond, body, init)
         runs = end.runs

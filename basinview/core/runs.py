@@ -55,6 +55,12 @@ class Runs:
         scheme: ``(R,)`` the name of each run's initialisation scheme when
             the starts were named sets (:func:`~basinview.core.scheme_starts`),
             else None.
+        sharpness: ``(R, J)`` the top Hessian eigenvalue at the iterates
+            ``sharpness_steps`` (``descend(..., sharpness_every=k)``); NaN
+            after a run stopped; None when not tracked.
+        preconditioned_sharpness: ``(R, J)`` ``lambda_max(P^-1 H)`` at the
+            same iterates for adaptive rules (NaN at iterate 0); else None.
+        sharpness_steps: ``(J,)`` the recorded iterates ``0, k, 2k, ...``.
     """
 
     rule: str
@@ -73,6 +79,17 @@ class Runs:
     config: DescentConfig | None = None
     preconditioner: np.ndarray | None = None
     scheme: np.ndarray | None = None
+    sharpness: np.ndarray | None = None
+    preconditioned_sharpness: np.ndarray | None = None
+    sharpness_steps: np.ndarray | None = None
+
+    @property
+    def sharpness_table(self) -> pd.DataFrame:
+        """One row per run and recorded iterate: sharpness, threshold, ratio (see
+        :func:`basinview.core.sharpness.sharpness_frame`)."""
+        from .sharpness import sharpness_frame
+
+        return sharpness_frame(self)
 
     def __len__(self) -> int:
         return int(self.status.shape[0])

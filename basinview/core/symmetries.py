@@ -50,7 +50,6 @@ References:
 from __future__ import annotations
 
 import warnings
-
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any

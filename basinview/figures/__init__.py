@@ -17,6 +17,7 @@ from .instruments import curved_path_figure, density_figure, trajectory_figure
 from .levels import Levels, choose_levels
 from .paths import COLOR_BY
 from .schemes import scheme_colours, scheme_shares_figure, scheme_steps_figure
+from .sharpness import sharpness_figure
 from .slices import relief_figure, slice_caution, slice_figure
 from .style import CATEGORY_COLOURS, OKABE_ITO, SURFACE_SCALE
 from .text import readable_table, significant
@@ -40,6 +41,7 @@ __all__ = [
     "scheme_colours",
     "scheme_shares_figure",
     "scheme_steps_figure",
+    "sharpness_figure",
     "significant",
     "slice_caution",
     "slice_figure",

@@ -1,0 +1,193 @@
+"""Figure of sharpness along runs: the top Hessian eigenvalue against the step.
+
+:func:`sharpness_figure` draws each run's recorded sharpness (from
+``descend(..., sharpness_every=k)``) against the step, and each run's
+stability threshold as a dashed line of the same colour: ``2 / lr`` for
+gradient descent, ``(2 + 2 beta) / lr`` for heavy-ball momentum,
+``(2 + 2 beta) / ((1 + 2 beta) lr)`` for Nesterov momentum, and, for Adam and
+RMSProp, the adaptive threshold on the preconditioned sharpness
+(``38 / lr`` for Adam with ``b1 = 0.9``). A run whose curve climbs to its
+line and stays there is at the edge of stability.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import plotly.graph_objects as go
+
+from ..core.errors import ParameterError
+from ..core.runs import Runs
+from ..core.sharpness import sharpness_threshold
+from .build import FigureSpec
+from .style import add_note, base_layout, category_colour, uid
+
+__all__ = ["MAX_DRAWN", "sharpness_figure"]
+
+MAX_DRAWN = 12
+"""At most this many runs are drawn (the first ones; the table has them all)."""
+
+_FORMULA = {
+    "gradient_descent": "2/lr",
+    "momentum": "(2+2β)/lr",
+    "nesterov": "(2+2β)/((1+2β)lr)",
+    "adam": "(2+2β₁)/((1−β₁)lr)",
+    "rmsprop": "2/lr",
+}
+
+
+def _number(x: float) -> str:
+    return f"{x:,.0f}" if abs(x) >= 1000 else f"{x:.4g}"
+
+
+def _label(runs: Runs, r: int) -> str:
+    parts = [f"lr {float(runs.hyper['learning_rate'][r]):.3g}"]
+    for name, values in runs.hyper.items():
+        if name != "learning_rate" and len(np.unique(values)) > 1:
+            parts.append(f"{name} {float(values[r]):.3g}")
+    if len(np.unique(runs.start_index)) > 1:
+        parts.append(f"start {int(runs.start_index[r])}")
+    return ", ".join(parts)
+
+
+def sharpness_figure(
+    runs: Runs,
+    *,
+    quantity: str = "auto",
+    runs_shown: Any = None,
+    log_y: bool = False,
+    title: str | None = None,
+) -> go.Figure:
+    """Sharpness against step for each run, with each run's stability threshold dashed.
+
+    Args:
+        runs: from ``descend(..., sharpness_every=k)``.
+        quantity: ``"sharpness"`` (``lambda_max(H)``), ``"preconditioned"``
+            (``lambda_max(P^-1 H)``, Adam and RMSProp only) or ``"auto"``
+            (the preconditioned one where the rule has a preconditioner:
+            that is the quantity its threshold speaks of).
+        runs_shown: indices of the runs to draw (default: the first
+            :data:`MAX_DRAWN`).
+        log_y: logarithmic sharpness axis (thresholds of very different
+            learning rates on one figure).
+        title: figure title.
+
+    References:
+        Cohen, J. M., Kaur, S., Li, Y., Kolter, J. Z. & Talwalkar, A. (2021).
+        Gradient descent on neural networks typically occurs at the edge of
+        stability. ICLR. arXiv:2103.00065.
+        Cohen, J. M. et al. (2022). Adaptive gradient methods at the edge of
+        stability. arXiv:2207.14484.
+    """
+    if not isinstance(runs, Runs):
+        raise ParameterError(f"sharpness_figure needs Runs; got {type(runs).__name__}.")
+    if runs.sharpness is None or runs.sharpness_steps is None:
+        raise ParameterError(
+            "these runs did not track sharpness; run descend(..., sharpness_every=k) "
+            "(e.g. k=10) to record it."
+        )
+    if quantity not in ("auto", "sharpness", "preconditioned"):
+        raise ParameterError(
+            f"quantity must be 'auto', 'sharpness' or 'preconditioned'; got {quantity!r}."
+        )
+    pre = runs.preconditioned_sharpness
+    if quantity == "preconditioned" and pre is None:
+        raise ParameterError(
+            f"{runs.rule} has no preconditioner, so there is no preconditioned sharpness; "
+            "use quantity='sharpness'."
+        )
+    use_pre = pre is not None and quantity in ("auto", "preconditioned")
+    values = pre if use_pre else runs.sharpness
+    assert values is not None
+    shown = list(range(min(len(runs), MAX_DRAWN))) if runs_shown is None else list(runs_shown)
+    if not shown or any(not 0 <= int(r) < len(runs) for r in shown):
+        raise ParameterError(
+            f"runs_shown must list run numbers from 0 to {len(runs) - 1}; got {runs_shown!r}."
+        )
+    steps = runs.sharpness_steps
+    fig = FigureSpec()
+    drawn_lines: dict[float, int] = {}
+    top = 0.0
+    for i, r in enumerate(int(r) for r in shown):
+        colour = category_colour(i)
+        live = steps <= runs.stop_step[r]
+        y = np.where(live, values[r], np.nan)
+        name = _label(runs, r)
+        hyper = {k: float(v[r]) for k, v in runs.hyper.items()}
+        threshold, kind = sharpness_threshold(runs.rule, hyper)
+        compared = kind == "preconditioned_sharpness"
+        if compared != use_pre:
+            threshold = None  # the threshold speaks of the other quantity
+        custom = np.stack([y / threshold if threshold else np.full(y.shape, np.nan)], axis=1)
+        fig.add_trace(
+            {
+                "type": "scatter",
+                "x": steps,
+                "y": y,
+                "mode": "lines+markers" if steps.size <= 40 else "lines",
+                "line": {"color": colour, "width": 2},
+                "marker": {"size": 5, "color": colour},
+                "name": f"{name} ({runs.status[r]})",
+                "customdata": custom,
+                "hovertemplate": (
+                    f"{name}<br>step %{{x:d}}<br>estimate %{{y:.5g}}"
+                    + ("<br>%{customdata[0]:.3f} of the threshold" if threshold else "")
+                    + "<extra></extra>"
+                ),
+                "uid": uid("sharpness", "run", r),
+            }
+        )
+        finite = y[np.isfinite(y)]
+        if finite.size:
+            top = max(top, float(finite.max()))
+        if threshold is not None and np.isfinite(threshold):
+            key = round(float(threshold), 12)
+            if key in drawn_lines:
+                continue
+            drawn_lines[key] = i
+            top = max(top, threshold)
+            formula = _FORMULA.get(runs.rule, "threshold")
+            fig.add_trace(
+                {
+                    "type": "scatter",
+                    "x": [float(steps[0]), float(steps[-1])],
+                    "y": [threshold, threshold],
+                    "mode": "lines",
+                    "line": {"color": colour, "width": 1.5, "dash": "dash"},
+                    "name": f"{formula} = {_number(threshold)} ({name})",
+                    "hovertemplate": f"stability threshold {formula} = {threshold:.5g}<extra></extra>",
+                    "uid": uid("sharpness", "threshold", r),
+                }
+            )
+    y_title = "preconditioned sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
+    track = runs.config.sharpness if runs.config is not None else None
+    every = track.every if track is not None else int(steps[1] - steps[0]) if steps.size > 1 else 1
+    sub = (
+        f"{runs.rule}; estimated every {every} steps inside the runs; dashed: each rate's threshold"
+    )
+    layout = base_layout(title or "Sharpness along the runs", sub)
+    layout["xaxis"] = {"title": {"text": "step"}}
+    layout["yaxis"] = {"title": {"text": y_title}, "rangemode": "tozero"}
+    if log_y:
+        layout["yaxis"] = {"title": {"text": y_title}, "type": "log"}
+    elif top > 0:
+        layout["yaxis"]["range"] = [0, 1.12 * top]
+    layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left"})
+    layout["margin"]["r"] = 260
+    layout["margin"]["b"] = 120
+    fig.update_layout(layout)
+    add_note(
+        fig,
+        "A curve that climbs to its dashed line and stays there is at the edge of stability: "
+        "the step cannot settle where the loss is sharper.",
+    )
+    add_note(
+        fig,
+        "Warm-started Lanczos estimates (lower bounds; they can lag when eigenvalues cross). "
+        "The threshold is local: a run above it need not diverge.",
+        row=1,
+    )
+    if runs.config is not None and runs.config.batch_size is not None:
+        add_note(fig, "Minibatch steps; sharpness is of the full-data loss.", row=2)
+    return fig.figure()
