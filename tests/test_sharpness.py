@@ -336,3 +336,48 @@ def test_report_places_sharpness_and_density(quad64):
     assert np.linalg.eigvalsh(a)[0] < 0 and "not a minimum of the model" in text
     page = report_html(analysis)
     assert "bv-sharpness" in page and "bv-density" in page
+
+
+def test_recorded_settings_rerun_with_the_same_sharpness_tracking():
+    # The record of a view reproduces it (common practice): a view whose runs tracked
+    # sharpness, written to JSON and rebuilt, tracks it again at the same iterates.
+    from basinview.core import (
+        Settings,
+        ViewSpec,
+        axes_plane,
+        compute_runs,
+        explicit_starts,
+        record_settings,
+    )
+
+    def bowl(theta):
+        return 0.5 * (3.0 * theta[0] ** 2 + theta[1] ** 2) + 0.1 * theta[0] ** 4
+
+    problem = Problem(bowl, jnp.array([1.0, 1.0]))
+    plane = axes_plane(problem, "theta[0]", "theta[1]")
+    starts = explicit_starts(problem, np.array([[1.0, 1.0], [-0.5, 0.8]]))
+    runs = descend(
+        problem,
+        starts,
+        learning_rate=0.1,
+        steps=30,
+        plane=plane,
+        sharpness_every=5,
+        sharpness_iterations=3,
+    )
+    settings = record_settings(
+        problem, plane=plane, span=1.0, resolution=5, starts=starts, runs=runs
+    )
+    assert settings.sharpness["every"] == 5 and settings.sharpness["iterations"] == 3
+    again = Settings.from_json(settings.to_json())
+    rerun = compute_runs(problem, ViewSpec.from_settings(problem, again))
+    np.testing.assert_array_equal(rerun.sharpness_steps, runs.sharpness_steps)
+    np.testing.assert_allclose(rerun.sharpness, runs.sharpness, rtol=1e-6)
+    import json
+
+    from basinview.core import SettingsError
+
+    bad = json.loads(settings.to_json())
+    bad["sharpness"] = {"every": 0}
+    with pytest.raises(SettingsError, match="sharpness"):
+        Settings.from_json(json.dumps(bad))

@@ -129,8 +129,15 @@ def compute_surface(problem: Problem, view: ViewSpec, *, resolution: Any = None)
 def compute_runs(
     problem: Problem, view: ViewSpec, *, min_runs: int = 1, sharpness_every: int = 0
 ) -> Runs:
-    """Descent from the view's starts at every setting of its hyper-parameter grid
-    (``sharpness_every``: see :func:`~basinview.core.descend`)."""
+    """Descent from the view's starts at every setting of its hyper-parameter grid.
+
+    Sharpness is tracked every ``sharpness_every`` steps when given (see
+    :func:`~basinview.core.descend`), else as the view records it
+    (``view.sharpness``, from ``Settings.sharpness``).
+    """
+    track = dict(view.sharpness)
+    if sharpness_every:
+        track = {"every": int(sharpness_every)}
     return descend(
         problem,
         view.starts,
@@ -146,7 +153,8 @@ def compute_runs(
         seed=view.seed,
         min_runs=min_runs,
         sizes=view.sizes if "descent_runs_per_call" in view.sizes else None,
-        sharpness_every=sharpness_every,
+        sharpness_every=int(track.get("every", 0)),
+        **({"sharpness_iterations": int(track["iterations"])} if "iterations" in track else {}),
     )
 
 

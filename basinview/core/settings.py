@@ -85,6 +85,7 @@ class Settings:
     versions: dict[str, str] = field(default_factory=dict)
     schema: int = SCHEMA_VERSION
     sizes: dict[str, int] = field(default_factory=dict)
+    sharpness: dict[str, int] = field(default_factory=dict)
 
     # --------------------------------------------------------------- JSON
     def to_dict(self) -> dict[str, Any]:
@@ -293,4 +294,5 @@ def record_settings(
         created=_dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         versions=library_versions(),
         sizes=sizes,
+        sharpness=dict(cfg.get("sharpness", {})),
     )

@@ -214,6 +214,18 @@ def fields_from_raw(raw: Any, names: set[str], required: set[str]) -> dict[str, 
         for v in sizes.values()
     ):
         raise _bad("settings field 'sizes' must map names to non-negative integers.")
+    sharpness = raw.get("sharpness", {})
+    if not isinstance(sharpness, dict) or not all(
+        k in ("every", "iterations", "first_iterations")
+        and isinstance(v, int)
+        and not isinstance(v, bool)
+        and 1 <= v <= MAX_STEPS
+        for k, v in sharpness.items()
+    ) or (sharpness and "every" not in sharpness):
+        raise _bad(
+            "settings field 'sharpness' must be empty or hold 'every' (and optionally "
+            f"'iterations', 'first_iterations'), integers from 1 to {MAX_STEPS}."
+        )
     plane = _expect(raw, "plane", (dict,), "an object")
     starts = _expect(raw, "starts", (dict,), "an object")
     for key, spec in (("plane", plane), ("starts", starts)):
@@ -242,4 +254,5 @@ def fields_from_raw(raw: Any, names: set[str], required: set[str]) -> dict[str, 
         versions=dict(versions),
         schema=schema,
         sizes=dict(sizes),
+        sharpness=dict(sharpness),
     )

@@ -58,6 +58,8 @@ class ViewSpec:
         note: a note kept in the recorded settings.
         sizes: program sizes to reuse (``Settings.sizes`` of a record; empty:
             from the cost model), so a recorded view reruns the same programs.
+        sharpness: sharpness tracking of the runs (``Settings.sharpness``:
+            ``{"every": k, "iterations": i}``; empty: not tracked).
     """
 
     plane: Plane
@@ -75,6 +77,7 @@ class ViewSpec:
     seed: int = 0
     note: str = ""
     sizes: Mapping[str, int] = field(default_factory=dict)
+    sharpness: Mapping[str, int] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "span", span_ranges(self.span, self.plane.centre))
@@ -134,6 +137,7 @@ class ViewSpec:
             seed=settings.seed,
             note=settings.note,
             sizes=dict(settings.sizes),
+            sharpness=dict(settings.sharpness),
         )
 
     def single_hyper(self, hyper: Mapping[str, float] | None, what: str) -> dict[str, float]:
