@@ -23,6 +23,7 @@ for every later view. Nothing is fetched from the network.
 
 from __future__ import annotations
 
+import base64
 import functools
 import hashlib
 import json
@@ -94,10 +95,25 @@ def encode(value: Any) -> Any:
             return {"bv_array": arr.dtype.name, "shape": list(arr.shape), "buffer": arr.tobytes()}
         return [encode(v) for v in value.tolist()]
     if isinstance(value, Mapping):
+        if "bdata" in value and "dtype" in value:
+            return encode(_typed_array(value))
         return {str(k): encode(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
         return [encode(v) for v in value]
     return _json_value(value)
+
+
+def _typed_array(spec: Mapping[str, Any]) -> np.ndarray:
+    """plotly's typed-array JSON (``{"dtype", "bdata": base64, "shape"}``) as a numpy array.
+
+    plotly's figures write numeric arrays this way in ``to_plotly_json()``
+    (the plotly.js typed-array format); here they become binary buffers.
+    """
+    flat = np.frombuffer(base64.b64decode(spec["bdata"]), dtype=np.dtype(spec["dtype"]))
+    shape = spec.get("shape")
+    if isinstance(shape, str):
+        shape = [int(n) for n in shape.split(",")]
+    return flat.reshape(shape) if shape else flat
 
 
 def decode(value: Any) -> Any:
