@@ -58,7 +58,7 @@ def test_worker_stops_at_the_next_call_boundary_and_reports_once():
     release.set()
     worker.wait(5)
     assert not worker.busy
-    (name, result, error, current), = done
+    ((name, result, error, current, latest),) = done
     assert name == "long" and result is None and isinstance(error, Cancelled)
     assert [r.done for r in reports] == [0, 1, 2]  # nothing ran after the cancel
 
@@ -71,7 +71,7 @@ def test_a_change_makes_a_running_task_not_current():
     worker.bump()  # a view change while it runs
     release.set()
     worker.wait(5)
-    assert done == [("slow", "value", None, False)]
+    assert done == [("slow", "value", None, False, True)]
 
 
 def test_basin_map_runs_in_the_worker_with_progress_and_status(explorer):

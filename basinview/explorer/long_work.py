@@ -100,9 +100,14 @@ class LongWork:
     def cancel(self) -> bool:
         """Stop the long work running now (within about a second); the view stays as it was."""
         self._cancelled_by_user = True
+        name = self.worker.name
         running = self.worker.cancel()
         if running:
-            self._say(f"cancelling… · {self.describe()}")
+            # The view is released at once: the task stops at its next call boundary in
+            # the background, and whatever it returns is for an older generation.
+            self.worker.bump()
+            self._end()
+            self._say(f"{name} cancelled; the view is unchanged · {self.describe()}")
         return running
 
     def wait(self, timeout: float | None = None) -> None:
@@ -146,6 +151,7 @@ class LongWork:
             return  # the full surface of this slice is still wanted
         self._cancelled_by_user = False
         self.worker.cancel(wait=True, timeout=5.0)
+        self._end()
 
     def _start_surface(self, state: ViewState) -> None:
         """Compute the full-resolution surface of ``state`` in the worker (a preview shows)."""
@@ -165,15 +171,17 @@ class LongWork:
         self.progress.value = min(p.done, p.total)
         self.progress.description = f"{p.done}/{p.total}"
 
-    def _on_task_done(self, name: str, result: Any, error: Any, current: bool) -> None:
+    def _on_task_done(
+        self, name: str, result: Any, error: Any, current: bool, latest: bool
+    ) -> None:
         """The worker's report (from its thread): draw and say what came, if still current."""
         try:
             self._finish(name, result, error, current)
         except Exception as exc:  # never a traceback in a thread
             self._report(exc)
         finally:
-            if not self.worker.busy or self.worker.name == name:
-                self._end()
+            if latest and not self._cancelled_by_user:
+                self._end()  # (a cancel or a newer task has set the bar already)
 
     def _show_side(self, view: str) -> None:
         if self.view.value == view:
@@ -188,9 +196,7 @@ class LongWork:
     def _finish_locked(self, name: str, result: Any, error: Any, current: bool) -> None:
         self._task_error = error
         if isinstance(error, Cancelled) or (error is None and not current and name != "surface"):
-            if self._cancelled_by_user:
-                self._say(f"{name} cancelled; the view is unchanged · {self.describe()}")
-            return  # cancelled by a newer change: that change writes the status
+            return  # cancelled (cancel() said so) or overtaken by a newer change (it says so)
         if error is not None:
             if current:
                 self._report(error)

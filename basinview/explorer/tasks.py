@@ -40,17 +40,18 @@ class Worker:
 
     Args:
         on_progress: called with a :class:`Progress` (from the worker thread).
-        on_done: called as ``on_done(name, result, error, current)`` when a
-            task ends: ``error`` is the exception or None (a :class:`Cancelled`
-            when it was cancelled), ``current`` whether no view change happened
-            since it started.
+        on_done: called as ``on_done(name, result, error, current, latest)``
+            when a task ends: ``error`` is the exception or None (a
+            :class:`Cancelled` when it was cancelled), ``current`` whether no
+            view change happened since it started, ``latest`` whether no other
+            task was started since.
         background: run tasks in a thread (False: in the caller, for scripts).
     """
 
     def __init__(
         self,
         on_progress: Callable[[Progress], Any],
-        on_done: Callable[[str, Any, BaseException | None, bool], Any],
+        on_done: Callable[[str, Any, BaseException | None, bool, bool], Any],
         *,
         background: bool = True,
     ) -> None:
@@ -62,6 +63,7 @@ class Worker:
         self._thread: threading.Thread | None = None
         self._lock = threading.Lock()
         self.name: str | None = None
+        self._started = 0
 
     @property
     def busy(self) -> bool:
@@ -96,6 +98,8 @@ class Worker:
         self._cancel.clear()
         self.name = name
         generation = self.generation
+        self._started += 1
+        task_id = self._started
 
         def run() -> None:
             result, error = None, None
@@ -104,7 +108,7 @@ class Worker:
             except BaseException as exc:  # reported to on_done, never lost in a thread
                 error = exc
             current = generation == self.generation and not self._cancel.is_set()
-            self._on_done(name, result, error, current)
+            self._on_done(name, result, error, current, task_id == self._started)
 
         if not (self.background if background is None else background):
             run()
