@@ -169,9 +169,10 @@ class PlotView(anywidget.AnyWidget):
 
     Attributes:
         view_ranges: the axis ranges and 3-D camera the user set by zooming or
-            turning (relayout keys such as ``"xaxis.range[0]"``); applied again
-            to later figures of the same ``uirevision``, so zoom survives updates
-            and a page reload.
+            turning (relayout keys such as ``"xaxis.range[0]"``), while the
+            ``uirevision`` stays. plotly.js keeps them across updates itself
+            (``uirevision``); they are not written into the layout, where they
+            would become the ranges a double click "resets" to.
         clicks: how many click messages arrived (for tests and diagnostics).
         bytes_sent: bytes of figure data set on the widget so far (buffers and
             JSON), to measure what each update costs.
@@ -218,7 +219,6 @@ class PlotView(anywidget.AnyWidget):
             self.view_ranges = {}
             self._uirevision = uirevision
         layout["uirevision"] = uirevision
-        _apply_ranges(layout, self.view_ranges)
         grids, traces, digests = [], [], []
         for trace in data:
             if trace.get("type") in GRID_TYPES:
@@ -305,24 +305,6 @@ def _keep_ranges(kept: dict[str, Any], data: Mapping[str, Any]) -> None:
                 del kept[k]
         elif ".range" in key or key.endswith("camera"):
             kept[key] = value
-
-
-def _apply_ranges(layout: dict[str, Any], kept: Mapping[str, Any]) -> None:
-    """Write the kept zoom and camera into ``layout`` (so a new page shows them too)."""
-    ranges: dict[str, dict[int, float]] = {}
-    for key, value in kept.items():
-        if key.endswith("camera"):
-            layout.setdefault("scene", {})["camera"] = value
-        elif key.endswith(".range") and isinstance(value, (list, tuple)) and len(value) == 2:
-            ranges[key[: -len(".range")]] = {0: value[0], 1: value[1]}
-        elif key.endswith("]"):
-            axis, index = key[: -len(".range[0]")], int(key[-2])
-            ranges.setdefault(axis, {})[index] = value
-    for axis, bounds in ranges.items():
-        if set(bounds) == {0, 1} and "." not in axis:
-            entry = layout.setdefault(axis, {})
-            entry["range"] = [bounds[0], bounds[1]]
-            entry["autorange"] = False
 
 
 def _size(value: Any) -> int:
