@@ -51,10 +51,18 @@ explorer"""
 def _notebook(cells: list[str]) -> dict[str, Any]:
     return {
         "cells": [
-            {"cell_type": "code", "metadata": {}, "source": c, "outputs": [], "execution_count": None}
+            {
+                "cell_type": "code",
+                "metadata": {},
+                "source": c,
+                "outputs": [],
+                "execution_count": None,
+            }
             for c in cells
         ],
-        "metadata": {"kernelspec": {"name": "python3", "display_name": "Python 3", "language": "python"}},
+        "metadata": {
+            "kernelspec": {"name": "python3", "display_name": "Python 3", "language": "python"}
+        },
         "nbformat": 4,
         "nbformat_minor": 5,
     }
@@ -102,8 +110,11 @@ def _browser_rows(quick: bool) -> dict[str, Any]:
         try:
             with sync_playwright() as p:
                 context = p.chromium.launch_persistent_context(
-                    str(tmp_path / "profile"), executable_path=CHROMIUM, headless=True,
-                    args=CHROMIUM_ARGS, viewport={"width": 1500, "height": 1100},
+                    str(tmp_path / "profile"),
+                    executable_path=CHROMIUM,
+                    headless=True,
+                    args=CHROMIUM_ARGS,
+                    viewport={"width": 1500, "height": 1100},
                 )
                 context.set_default_timeout(300_000)
                 for book in books:
@@ -111,7 +122,9 @@ def _browser_rows(quick: bool) -> dict[str, Any]:
                     frames: list[int] = []
                     received: list[int] = []
 
-                    def on_ws(ws: Any) -> None:
+                    def on_ws(
+                        ws: Any, frames: list[int] = frames, received: list[int] = received
+                    ) -> None:
                         def got(payload: Any) -> None:
                             n = len(payload)
                             frames.append(n)
@@ -149,16 +162,33 @@ def _saved_size() -> dict[str, Any]:
     """A notebook with two Explorers executed and saved with its widget state."""
     with tempfile.TemporaryDirectory() as tmp:
         path = Path(tmp) / "two.ipynb"
-        path.write_text(json.dumps(_notebook([QUICKSTART, QUICKSTART.replace("explorer", "second")])))
+        path.write_text(
+            json.dumps(_notebook([QUICKSTART, QUICKSTART.replace("explorer", "second")]))
+        )
         env = dict(os.environ, PYTHONPATH=str(ROOT))
         subprocess.run(
-            [sys.executable, "-m", "jupyter", "nbconvert", "--to", "notebook", "--execute",
-             "--inplace", "--NotebookClient.store_widget_state=True", str(path)],
-            check=True, env=env, capture_output=True, timeout=900,
+            [
+                sys.executable,
+                "-m",
+                "jupyter",
+                "nbconvert",
+                "--to",
+                "notebook",
+                "--execute",
+                "--inplace",
+                "--NotebookClient.store_widget_state=True",
+                str(path),
+            ],
+            check=True,
+            env=env,
+            capture_output=True,
+            timeout=900,
         )
         text = path.read_text()
-        return {"two_explorers_saved_bytes": len(text.encode()),
-                "plotly_js_inside": "Plotly" in text and len(text) > 3_000_000}
+        return {
+            "two_explorers_saved_bytes": len(text.encode()),
+            "plotly_js_inside": "Plotly" in text and len(text) > 3_000_000,
+        }
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -171,10 +201,14 @@ def main(argv: list[str] | None = None) -> int:
     result["seconds"] = time.time() - t0
     OUT.write_text(json.dumps(result, indent=2))
     for name, row in result["browser"].items():
-        print(f"{name}: keypress to redraw median {row['median_ms']:.0f} ms, "
-              f"{row['bytes_per_update_median'] / 1e3:.1f} kB per update, "
-              f"first show {row['first_show_bytes'] / 1e6:.2f} MB")
-    print(f"two Explorers saved with widget state: {result['two_explorers_saved_bytes'] / 1e3:.0f} kB")
+        print(
+            f"{name}: keypress to redraw median {row['median_ms']:.0f} ms, "
+            f"{row['bytes_per_update_median'] / 1e3:.1f} kB per update, "
+            f"first show {row['first_show_bytes'] / 1e6:.2f} MB"
+        )
+    print(
+        f"two Explorers saved with widget state: {result['two_explorers_saved_bytes'] / 1e3:.0f} kB"
+    )
     print(f"load average before: {' '.join(f'{x:.2f}' for x in load)}")
     return 0
 

@@ -208,6 +208,8 @@ def test_snapshot_markdown_is_plain_json_data(explorer):
 
 
 def test_origin_may_be_a_pytree(scenario):
-    ex = Explorer(scenario.problem, origin={"x": 5.0, "y": 0.0}, span=3.0, resolution=11, steps=20, n_starts=2)
+    ex = Explorer(
+        scenario.problem, origin={"x": 5.0, "y": 0.0}, span=3.0, resolution=11, steps=20, n_starts=2
+    )
     assert ex.state.origin == (5.0, 0.0)
     assert "⚠" not in ex.status.value

@@ -59,6 +59,7 @@ def test_worker_stops_at_the_next_call_boundary_and_reports_once():
     worker.wait(5)
     assert not worker.busy
     ((name, result, error, current, latest),) = done
+    assert latest and not current
     assert name == "long" and result is None and isinstance(error, Cancelled)
     assert [r.done for r in reports] == [0, 1, 2]  # nothing ran after the cancel
 

@@ -147,15 +147,15 @@ def test_plotly_js_comes_from_the_installed_package_by_message_not_state(view):
     view.show(figure([1, 2, 3]))
     state = view.get_state()
     assert len(str(state)) < 100_000
-    assert not any(
-        isinstance(v, (bytes, str)) and len(v) > 1_000_000 for v in state.values()
-    )
+    assert not any(isinstance(v, (bytes, str)) and len(v) > 1_000_000 for v in state.values())
 
 
 def test_the_front_end_module_ships_as_package_data():
     static = resources.files("basinview.explorer") / "static"
     js = (static / "plot.js").read_text(encoding="utf-8")
     assert "Plotly.react" in js and "export default" in js
-    assert "purge" not in js.split("const draw")[1].split("const schedule")[0]  # no purge per update
+    assert (
+        "purge" not in js.split("const draw")[1].split("const schedule")[0]
+    )  # no purge per update
     assert (static / "plot.css").is_file()
     assert PlotView._esm == js

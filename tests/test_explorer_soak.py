@@ -16,7 +16,6 @@ import os
 import random
 import time
 
-import numpy as np
 import pytest
 
 from basinview import Explorer
@@ -57,8 +56,15 @@ def _quickstart():
 def _network():
     problem = wavy_band(seed=3).problem
     return Explorer(
-        problem, "random", span=1.0, resolution=21, learning_rate=0.2, steps=STEPS[0],
-        n_starts=STARTS[0], start_scale=0.5, background=False,
+        problem,
+        "random",
+        span=1.0,
+        resolution=21,
+        learning_rate=0.2,
+        steps=STEPS[0],
+        n_starts=STARTS[0],
+        start_scale=0.5,
+        background=False,
     )
 
 
@@ -73,10 +79,26 @@ def _actions(ex, rng):
         ("steps", lambda: setattr(c.steps, "value", rng.choice(STEPS)), False),
         ("random starts", lambda: setattr(c.n_starts, "value", rng.choice(STARTS)), False),
         ("start seed", lambda: setattr(c.start_seed, "value", rng.randrange(50)), False),
-        ("start spread", lambda: setattr(c.start_scale, "value", rng.choice((1.0, 2.0, 4.0))), False),
-        ("view", lambda: setattr(ex.view, "value", rng.choice(["relief", "loss curves", "runs", "minima", "basins", "step sizes"])), False),
+        (
+            "start spread",
+            lambda: setattr(c.start_scale, "value", rng.choice((1.0, 2.0, 4.0))),
+            False,
+        ),
+        (
+            "view",
+            lambda: setattr(
+                ex.view,
+                "value",
+                rng.choice(["relief", "loss curves", "runs", "minima", "basins", "step sizes"]),
+            ),
+            False,
+        ),
         ("record", lambda: ex.record_button.click(), False),
-        ("optimizer", lambda: setattr(c.optimizer, "value", rng.choice(["gradient_descent", "momentum"])), False),
+        (
+            "optimizer",
+            lambda: setattr(c.optimizer, "value", rng.choice(["gradient_descent", "momentum"])),
+            False,
+        ),
         ("forget clicks", lambda: c.clear_clicks.click(), False),
         ("basins", lambda: ex.basins_button.click(), False),
     ]
@@ -93,7 +115,9 @@ def _actions(ex, rng):
     if s.plane_kind == "axes":
         options.append(("same axes", lambda: setattr(c.x_label, "value", c.y_label.value), True))
     else:
-        options.append(("plane seed", lambda: setattr(c.plane_seed, "value", rng.choice((0, 1))), False))
+        options.append(
+            ("plane seed", lambda: setattr(c.plane_seed, "value", rng.choice((0, 1))), False)
+        )
     return rng.choice(options)
 
 
@@ -152,7 +176,10 @@ def _soak(ex, n, seed):
                 assert f"{len(ex.results.runs)} runs" in status, (i, name, status)
     gc.collect()
     grown = _rss_mb() - rss
-    print(f"soak: {n} changes, {time.perf_counter() - t0:.1f} s, RSS {grown:+.1f} MB;", {k: round(v, 1) for k, v in spent.items()})
+    print(
+        f"soak: {n} changes, {time.perf_counter() - t0:.1f} s, RSS {grown:+.1f} MB;",
+        {k: round(v, 1) for k, v in spent.items()},
+    )
     assert compiled.count == 0, f"{compiled.count} compilations after the warm-up"
     assert grown < 50, f"resident memory grew by {grown:.1f} MB"
 

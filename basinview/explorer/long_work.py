@@ -74,7 +74,11 @@ class LongWork:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always", MinimaWarning)
                 bm = self.computer.basins(res, progress=progress)
-            return state, bm, [str(c.message) for c in caught if issubclass(c.category, MinimaWarning)]
+            return (
+                state,
+                bm,
+                [str(c.message) for c in caught if issubclass(c.category, MinimaWarning)],
+            )
 
         self._begin(f"mapping basins from {res * res} starts…")
         return self._run("basins", task, wait)
@@ -206,9 +210,7 @@ class LongWork:
             if self.computer.adopt_surface(state, value):
                 self._draw_main(self.results)
                 self._draw_side()
-                self._say(
-                    f"{self.describe()} · full resolution {len(value.a)} × {len(value.b)}"
-                )
+                self._say(f"{self.describe()} · full resolution {len(value.a)} × {len(value.b)}")
             return
         if name == "basins":
             self._basins = (state, value)

@@ -171,7 +171,9 @@ class Explorer(LongWork):
         fit the width they are given.
         """
         if not hasattr(self, "_widget"):
-            busy = w.HBox([self.progress, self.cancel_button], layout=w.Layout(align_items="center"))
+            busy = w.HBox(
+                [self.progress, self.cancel_button], layout=w.Layout(align_items="center")
+            )
             actions = w.VBox([self.record_button, self.note, self.save_button, self.save_name])
             panel = w.VBox([self.status, busy, self.controls.box(), actions])
             panel.add_class("bv-panel")
@@ -272,8 +274,7 @@ class Explorer(LongWork):
         else:
             plane = f"{s.plane_kind} plane (seed {s.plane_seed})"
         return (
-            f"{s.optimizer}, learning rate {s.learning_rate:.3g}{hyper}, {s.steps} steps, "
-            f"{plane}"
+            f"{s.optimizer}, learning rate {s.learning_rate:.3g}{hyper}, {s.steps} steps, {plane}"
         )
 
     # ------------------------------------------------------------ compute

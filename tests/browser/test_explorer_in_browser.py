@@ -286,7 +286,9 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
         geometry = steps.check_layout(page, shots, name)
         if width == 1000:
             assert geometry["stacked"], geometry  # below ~1100 px the figures go under the controls
-    page.evaluate("() => window.jupyterapp && window.jupyterapp.shell.collapseLeft && window.jupyterapp.shell.collapseLeft()")
+    page.evaluate(
+        "() => window.jupyterapp && window.jupyterapp.shell.collapseLeft && window.jupyterapp.shell.collapseLeft()"
+    )
     page.set_viewport_size(front.viewport)
     page.wait_for_function(steps.FITTED, timeout=60_000)
 
@@ -295,30 +297,40 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
     page.locator(".bv-main").first.screenshot(path=str(shots / "5a-zoomed.png"))
     before = steps.revision(page)
     steps.changed_status(page, lambda: steps.set_readout(page, "learning rate", "0.3"))
-    page.wait_for_function(f"() => Number(document.querySelector('.bv-main .bv-plot').dataset.revision) > {before}")
+    page.wait_for_function(
+        f"() => Number(document.querySelector('.bv-main .bv-plot').dataset.revision) > {before}"
+    )
     after = steps.x_range(page)
     page.locator(".bv-main").first.screenshot(path=str(shots / "5b-zoom-after-learning-rate.png"))
     assert after == pytest.approx(zoomed), (zoomed, after)
     page.locator(".bv-main .nsewdrag").first.dblclick()  # back to the whole map
-    page.wait_for_function("() => document.querySelector('.bv-main .js-plotly-plot').layout.xaxis.autorange !== false")
+    page.wait_for_function(
+        "() => document.querySelector('.bv-main .js-plotly-plot').layout.xaxis.autorange !== false"
+    )
 
     # 6. No empty frame while the legend groups change (a rate that diverges adds a group).
     legend_before = page.locator(".bv-main .legend .traces").count()
     steps.start_sampling(page, "map")
-    text = steps.changed_status(page, lambda: steps.set_readout(page, "learning rate", "3"), r"learning rate 3\b")
+    text = steps.changed_status(
+        page, lambda: steps.set_readout(page, "learning rate", "3"), r"learning rate 3\b"
+    )
     page.wait_for_function("() => document.querySelectorAll('.bv-main .legend .traces').length > 0")
     samples = steps.stop_sampling(page)
     page.locator(".bv-explorer").first.screenshot(path=str(shots / "6-legend-groups-changed.png"))
     assert "diverged" in text, text
     assert page.locator(".bv-main .legend .traces").count() != legend_before
     assert samples and all(c > 0 and t > 0 for c, t, _ in samples), samples[:20]
-    steps.changed_status(page, lambda: steps.set_readout(page, "learning rate", "0.2"), r"learning rate 0.2\b")
+    steps.changed_status(
+        page, lambda: steps.set_readout(page, "learning rate", "0.2"), r"learning rate 0.2\b"
+    )
 
     # 7. A basin map's progress bar advances (3 or more distinct values).
     steps.set_readout(page, "basin grid", "121")
     steps.start_sampling(page, "progress")
     steps.button(page, "map basins").click()
-    page.wait_for_function("() => /mapping basins/.test(document.querySelector('.bv-explorer .bv-status').innerText)")
+    page.wait_for_function(
+        "() => /mapping basins/.test(document.querySelector('.bv-explorer .bv-status').innerText)"
+    )
     page.locator(".bv-explorer").first.screenshot(path=str(shots / "7a-basin-map-running.png"))
     steps.wait_status(page, r"basin map:", timeout_s=600)
     progress = steps.distinct_progress(steps.stop_sampling(page))
@@ -331,7 +343,9 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
     page.wait_for_function("() => document.querySelectorAll('.bv-side .y2tick').length > 0")
     rows = steps.tick_rows(page)
     page.locator(".bv-side").first.screenshot(path=str(shots / "8-step-sizes-after-basins.png"))
-    assert rows["top"] == pytest.approx([0.3608, 1.0]) and rows["bottom"] == pytest.approx([0.0, 0.3008])
+    assert rows["top"] == pytest.approx([0.3608, 1.0]) and rows["bottom"] == pytest.approx(
+        [0.0, 0.3008]
+    )
     assert max(rows["y"]) < min(rows["y2"]), rows  # the top panel's ticks all above the bottom's
     span_top = max(rows["y"]) - min(rows["y"])
     assert span_top > 0.3 * rows["height"], rows  # the top panel is not squeezed
@@ -339,7 +353,9 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
     # 9. Cancel stops a basin map within 2 s; the last view stays.
     picture = steps.side_picture(page)
     steps.button(page, "map basins").click()
-    page.wait_for_function("() => !document.querySelector('.bv-explorer button.bv-cancel').disabled")
+    page.wait_for_function(
+        "() => !document.querySelector('.bv-explorer button.bv-cancel').disabled"
+    )
     seconds = steps.timed_cancel(page)
     page.locator(".bv-explorer").first.screenshot(path=str(shots / "9-cancelled.png"))
     assert seconds < 2.0, seconds
@@ -353,7 +369,9 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
     steps.changed_status(page, lambda: steps.set_readout(page, "random starts", "10"), r"runs:")
     steps.changed_status(page, lambda: steps.set_text(page, "start seed", "3"), r"runs:")
     steps.changed_status(page, lambda: steps.set_readout(page, "start spread", "2"), r"runs:")
-    steps.changed_status(page, lambda: steps.button(page, "forget clicked starts").click(), r"runs:")
+    steps.changed_status(
+        page, lambda: steps.button(page, "forget clicked starts").click(), r"runs:"
+    )
     steps.changed_status(page, lambda: steps.set_readout(page, "span (±)", "5"), r"runs:")
     steps.changed_status(page, lambda: steps.set_readout(page, "resolution", "41"), r"surface")
     steps.changed_status(page, lambda: steps.select(page, "x axis", "y"), r"must differ")
