@@ -293,6 +293,8 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
     page.wait_for_function(steps.FITTED, timeout=60_000)
 
     # 5. Zoom is kept after a learning-rate change.
+    whole = steps.x_range(page)
+    assert whole is not None
     zoomed = steps.zoom_in(page)
     page.locator(".bv-main").first.screenshot(path=str(shots / "5a-zoomed.png"))
     before = steps.revision(page)
@@ -303,8 +305,15 @@ def _long_session(page, front: Frontend, shots: Path) -> None:
     after = steps.x_range(page)
     page.locator(".bv-main").first.screenshot(path=str(shots / "5b-zoom-after-learning-rate.png"))
     assert after == pytest.approx(zoomed), (zoomed, after)
+    runs = _runs_in_status(page)
     page.locator(".bv-main .nsewdrag").first.dblclick()  # back to the whole map
     page.wait_for_function(
+        "(whole) => { const r = document.querySelector('.bv-main .js-plotly-plot').layout.xaxis.range;"
+        " return !!r && Math.abs(r[0] - whole[0]) < 1e-6 && Math.abs(r[1] - whole[1]) < 1e-6; }",
+        arg=whole,
+    )
+    page.wait_for_timeout(1500)  # checking for an absence: a click would be sent by now
+    assert _runs_in_status(page) == runs  # a double click adds no start
         "() => document.querySelector('.bv-main .js-plotly-plot').layout.xaxis.autorange !== false"
     )
 

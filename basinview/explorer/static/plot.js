@@ -9,6 +9,7 @@
 
 const KEY = "__basinview_plotly__";
 const ASK_AGAIN_MS = 15000;
+const DOUBLE_CLICK_MS = 300;
 
 function evaluate(source) {
   // plotly.min.js is a UMD bundle: give it a CommonJS `module` so it neither
@@ -135,13 +136,25 @@ function render({ model, el }) {
   };
 
   const listen = () => {
+    // A click is sent a moment later, and not at all when it was half of a double
+    // click (which resets the zoom and must not add two starts).
+    let clickTimer = null;
     plot.on("plotly_click", (event) => {
       const p = event && event.points && event.points[0];
       if (!p) return;
       const x = typeof p.x === "number" ? p.x : Number(p.x);
       const y = typeof p.y === "number" ? p.y : Number(p.y);
       if (!Number.isFinite(x) || !Number.isFinite(y)) return;
-      model.send({ kind: "click", x, y, uid: (p.data && p.data.uid) || "" });
+      const uid = (p.data && p.data.uid) || "";
+      if (clickTimer) clearTimeout(clickTimer);
+      clickTimer = setTimeout(() => {
+        clickTimer = null;
+        model.send({ kind: "click", x, y, uid });
+      }, DOUBLE_CLICK_MS);
+    });
+    plot.on("plotly_doubleclick", () => {
+      if (clickTimer) clearTimeout(clickTimer);
+      clickTimer = null;
     });
     plot.on("plotly_relayout", (data) => {
       const kept = {};
