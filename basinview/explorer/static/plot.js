@@ -139,6 +139,7 @@ function render({ model, el }) {
     // A click is sent a moment later, and not at all when it was half of a double
     // click (which resets the zoom and must not add two starts).
     let clickTimer = null;
+    let lastDouble = -Infinity;
     plot.on("plotly_click", (event) => {
       const p = event && event.points && event.points[0];
       if (!p) return;
@@ -146,13 +147,17 @@ function render({ model, el }) {
       const y = typeof p.y === "number" ? p.y : Number(p.y);
       if (!Number.isFinite(x) || !Number.isFinite(y)) return;
       const uid = (p.data && p.data.uid) || "";
+      const at = performance.now();
+      if (at - lastDouble < DOUBLE_CLICK_MS) return; // the second half of a double click
       if (clickTimer) clearTimeout(clickTimer);
       clickTimer = setTimeout(() => {
         clickTimer = null;
+        if (lastDouble >= at) return; // a double click came after it
         model.send({ kind: "click", x, y, uid });
       }, DOUBLE_CLICK_MS);
     });
     plot.on("plotly_doubleclick", () => {
+      lastDouble = performance.now();
       if (clickTimer) clearTimeout(clickTimer);
       clickTimer = null;
     });
