@@ -103,6 +103,7 @@ function render({ model, el }) {
   let pending = false;
   let alive = true;
   let observer = null;
+  let shownRevision = null;
 
   const figure = () => {
     const source = model.get("grids");
@@ -124,7 +125,15 @@ function render({ model, el }) {
     const { data, layout } = figure();
     const config = Object.assign({}, model.get("config") || {});
     plot.style.height = layout.height + "px";
-    Plotly.react(plot, data, layout, config).then(() => {
+    // Same view (uirevision): Plotly.react updates in place, keeping zoom and camera
+    // and never showing an empty frame. Another slice or span: a fresh plot, so no
+    // axis state of the old slice is carried over.
+    const fresh = layout.uirevision !== shownRevision;
+    shownRevision = layout.uirevision;
+    const drawn = fresh
+      ? Plotly.newPlot(plot, data, layout, config).then(() => listen())
+      : Plotly.react(plot, data, layout, config);
+    drawn.then(() => {
       root.dataset.revision = String(model.get("revision"));
     });
   };
@@ -136,6 +145,12 @@ function render({ model, el }) {
   };
 
   const listen = () => {
+    // newPlot purges the div's listeners; never register ours twice either way
+    if (plot.removeAllListeners) {
+      for (const name of ["plotly_click", "plotly_doubleclick", "plotly_relayout"]) {
+        plot.removeAllListeners(name);
+      }
+    }
     // A click is sent a moment later, and not at all when it was half of a double
     // click (which resets the zoom and must not add two starts).
     let clickTimer = null;
@@ -183,6 +198,7 @@ function render({ model, el }) {
       Plotly = lib;
       const { data, layout } = figure();
       plot.style.height = layout.height + "px";
+      shownRevision = layout.uirevision;
       return Plotly.newPlot(plot, data, layout, model.get("config") || {}).then(() => {
         root.dataset.revision = String(model.get("revision"));
         listen();
