@@ -199,7 +199,10 @@ def test_explorer_in_browser(tmp_path, frontend):
             context.set_default_timeout(TIMEOUT_MS)
             page = context.new_page()
             errors: list[str] = []
-            page.on("pageerror", lambda exc: errors.append(f"page error: {exc}"))
+            page.on(
+                "pageerror",
+                lambda exc: errors.append(f"page error: {exc} | {(exc.stack or '')[:600]}"),
+            )
             page.on(
                 "console",
                 lambda msg: msg.type == "error" and errors.append(f"console: {msg.text}"),
