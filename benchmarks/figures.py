@@ -14,7 +14,7 @@ property is checked (the dict is made outside the timer). Contenders run in
 interleaved rounds; the table gives the median of the rounds and the ratio.
 
 Two Explorer rows follow: copying a new slice figure into a live
-FigureWidget (``explorer.sync.sync_figure``, which sends only what changed)
+PlotView (``explorer.plot.PlotView.show``, which re-sends the grid only when it changed)
 against assigning the traces and layout wholesale, and a learning-rate
 change end to end (``ex.controls.learning_rate.value = v``: descent,
 minima, both figures, both copies), which has no baseline here. The load
@@ -110,10 +110,15 @@ def _builders(d: dict[str, Any]) -> dict[str, Callable[[], go.Figure]]:
 
 
 def _sync_rows(d: dict[str, Any], repeats: int) -> dict[str, list[float]]:
-    """Copying alternating slice figures (paths changed) into a FigureWidget."""
+    """Showing alternating slice figures (paths changed) in the Explorer's PlotView.
+
+    ``PlotView.show`` sends the traces and layout and re-sends the contour grid
+    only when it changed; ``wholesale`` makes a fresh PlotView each time (every
+    array sent again, as a newly displayed figure would).
+    """
     from basinview import core
     from basinview import figures as F
-    from basinview.explorer.sync import json_safe, sync_figure
+    from basinview.explorer.plot import PlotView
 
     prob = d["scenario"].problem
     other = core.descend(
@@ -123,21 +128,16 @@ def _sync_rows(d: dict[str, Any], repeats: int) -> dict[str, list[float]]:
         F.slice_figure(d["surface"], d["runs"], minima=d["minima"]),
         F.slice_figure(d["surface"], other, minima=core.find_minima(prob, other)),
     ]
-    fast = go.FigureWidget(layout={"height": 560, "width": 720})
-    naive = go.FigureWidget(layout={"height": 560, "width": 720})
+    fast = PlotView(height=560)
     turn = {"fast": 0, "naive": 0}
 
     def by_changes() -> None:
         turn["fast"] ^= 1
-        sync_figure(fast, figs[turn["fast"]])
+        fast.show(figs[turn["fast"]])
 
     def wholesale() -> None:
         turn["naive"] ^= 1
-        source = figs[turn["naive"]]
-        with naive.batch_update():
-            naive.data = []
-            naive.add_traces([json_safe(t.to_plotly_json()) for t in source.data])
-            naive.layout = source.layout
+        PlotView(height=560).show(figs[turn["naive"]])
 
     return race({"sync_figure": by_changes, "wholesale": wholesale}, repeats)
 

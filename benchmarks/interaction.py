@@ -31,7 +31,6 @@ import datetime as _dt
 import gc
 import statistics
 import time
-import types
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -85,9 +84,7 @@ def quickstart_explorer(**overrides: Any) -> Any:
 
 def _click(ex: Any, a: float, b: float) -> None:
     """What plotly does on a click at ``(a, b)`` of the map: call the trace's handler."""
-    surface = ex.main.data[0]
-    points = types.SimpleNamespace(point_inds=[0], xs=[a], ys=[b])
-    ex._on_click(surface, points, None)
+    ex.main.receive(ex.main, {"kind": "click", "x": a, "y": b, "uid": "slice-surface"}, [])
 
 
 def _hyper(ex: Any, name: str) -> Any:
@@ -132,12 +129,10 @@ def _expected(ex: Any, change: Change) -> tuple[str, Any, Any]:
 
 def path_data(fig: Any) -> tuple[tuple[float, ...], ...]:
     """The coordinates of every descent path drawn in ``fig`` (to see that it changed)."""
-    from basinview.explorer.sync import source_uids
-
     out = []
-    for trace, uid in zip(fig.data, source_uids(fig)):
-        if "path" in uid:
-            out.append(tuple(np.asarray(trace.x, float)) + tuple(np.asarray(trace.y, float)))
+    for trace in fig.figure_data():
+        if "path" in str(trace.get("uid", "")):
+            out.append(tuple(np.asarray(trace["x"], float)) + tuple(np.asarray(trace["y"], float)))
     return tuple(out)
 
 

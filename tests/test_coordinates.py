@@ -294,7 +294,7 @@ def test_explorer_span_and_clicks_are_parameter_values():
     assert ex.state.span == ((2.5, 3.5), (1.5, 2.5))
     surface = ex.results.surface
     np.testing.assert_allclose(surface.a, np.linspace(2.5, 3.5, 11))
-    np.testing.assert_allclose(np.asarray(ex.main.data[0].x, float), surface.a)
+    np.testing.assert_allclose(np.asarray(ex.main.figure_data()[0]["x"], float), surface.a)
     assert ex.controls.span.value == pytest.approx(0.5)
     ex.add_start(2.75, 1.75)
     np.testing.assert_allclose(ex.results.starts.points[-1], [2.75, 1.75, 1.0])

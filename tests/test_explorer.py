@@ -3,17 +3,14 @@
 from __future__ import annotations
 
 import json
-import types
 
 import numpy as np
-import plotly.io
 import pytest
 
 from basinview import Explorer
 from basinview.core import Settings
 from basinview.explorer import ViewState, stages_to_update
 from basinview.explorer.records import snapshot_markdown
-from basinview.explorer.sync import source_uids
 from basinview.scenarios import beacon
 
 
@@ -38,13 +35,22 @@ def explorer(scenario):
     )
 
 
-def _paths(fig):
-    uids = source_uids(fig)
+def _paths(view):
     return {
-        u: (tuple(np.asarray(t.x, float)), tuple(np.asarray(t.y, float)))
-        for t, u in zip(fig.data, uids)
-        if "path" in u
+        t["uid"]: (tuple(np.asarray(t["x"], float)), tuple(np.asarray(t["y"], float)))
+        for t in view.figure_data()
+        if "path" in t["uid"]
     }
+
+
+def _z(view):
+    (surface,) = [t for t in view.figure_data() if t["uid"] == "slice-surface"]
+    return np.asarray(surface["z"])
+
+
+def _click(explorer, x, y, uid="slice-surface"):
+    """What the front end sends when the map is clicked (the widget's message handler)."""
+    explorer.main.receive(explorer.main, {"kind": "click", "x": x, "y": y, "uid": uid}, [])
 
 
 def test_stage_planning_is_minimal():
@@ -67,13 +73,13 @@ def test_stage_planning_is_minimal():
 def test_learning_rate_change_reruns_descent_not_the_surface(explorer):
     counts = dict(explorer.computer.counts)
     before = _paths(explorer.main)
-    surface_z = np.asarray(explorer.main.data[0].z).copy()
+    surface_z = _z(explorer.main).copy()
     explorer.controls.learning_rate.value = 1.5
     after = dict(explorer.computer.counts)
     assert after["surface"] == counts["surface"]
     assert after["runs"] == counts["runs"] + 1
     assert _paths(explorer.main) != before
-    np.testing.assert_array_equal(np.asarray(explorer.main.data[0].z), surface_z)
+    np.testing.assert_array_equal(_z(explorer.main), surface_z)
     assert "updated runs, minima" in explorer.status.value
     assert explorer.state.learning_rate == pytest.approx(1.5)
 
@@ -83,7 +89,7 @@ def test_resolution_change_recomputes_only_the_surface(explorer):
     explorer.controls.resolution.value = 25
     assert explorer.computer.counts["surface"] == counts["surface"] + 1
     assert explorer.computer.counts["runs"] == counts["runs"]
-    assert np.asarray(explorer.main.data[0].z).shape == (25, 25)
+    assert _z(explorer.main).shape == (25, 25)
 
 
 def test_optimizer_change_rebuilds_hyper_controls(explorer):
@@ -101,11 +107,11 @@ def test_optimizer_change_rebuilds_hyper_controls(explorer):
 
 def test_bad_value_shows_in_status_and_keeps_the_last_good_view(explorer):
     good_state = explorer.state
-    good_fig = plotly.io.to_json(explorer.main)
+    good_fig = (explorer.main.traces, explorer.main.grids, explorer.main.plot_layout)
     explorer.controls.x_label.value = "y"  # same as the y axis
     assert "must differ" in explorer.status.value
     assert explorer.state == good_state
-    assert plotly.io.to_json(explorer.main) == good_fig
+    assert (explorer.main.traces, explorer.main.grids, explorer.main.plot_layout) == good_fig
     assert explorer.controls.x_label.value == "x"  # the control shows the last good value again
     # still usable
     explorer.controls.learning_rate.value = 0.3
@@ -132,12 +138,12 @@ def test_exception_in_a_callback_leaves_the_widget_usable(explorer, monkeypatch)
 
 def test_clicking_the_map_adds_a_start(explorer):
     n_runs = len(explorer.results.runs)
-    contour = explorer.main.data[0]
-    assert source_uids(explorer.main)[0] == "slice-surface"
-    # plotly calls every trace's handler; un-hit traces get empty point_inds
-    explorer._on_click(contour, types.SimpleNamespace(point_inds=[], xs=[], ys=[]), None)
+    assert explorer.main.uids[0] == "slice-surface"
+    # a click on a path (not on the map itself) adds nothing; nor does a malformed message
+    _click(explorer, 8.0, 4.0, uid="slice-path-m0")
+    explorer.main.receive(explorer.main, {"kind": "click", "x": None, "y": 1.0}, [])
     assert len(explorer.results.runs) == n_runs
-    explorer._on_click(contour, types.SimpleNamespace(point_inds=[7], xs=[8.0], ys=[4.0]), None)
+    _click(explorer, 8.0, 4.0)
     assert len(explorer.results.runs) == n_runs + 1
     # the axes read parameter values: the new start is at x = 8, y = 4
     np.testing.assert_allclose(explorer.results.starts.points[-1], [8.0, 4.0], atol=1e-6)
@@ -172,14 +178,16 @@ def test_save_without_snapshot_is_explained(explorer, tmp_path):
 
 def test_basins_and_step_sizes_views(explorer):
     explorer.basins_resolution.value = 9
-    explorer.basins_button.click()
+    explorer.basins_button.click()  # runs in the worker thread
+    explorer.wait()
     assert explorer.view.value == "basins"
-    assert any(t.type == "heatmap" for t in explorer.side.data)
+    assert any(t["type"] == "heatmap" for t in explorer.side.figure_data())
     assert "basin map" in explorer.status.value
     explorer.sweep_button.click()
+    explorer.wait()
     assert explorer.view.value == "step sizes"
     assert "predicted bound" in explorer.status.value
-    assert len(explorer.side.data) > 0
+    assert len(explorer.side.traces) > 0
     explorer.view.value = "runs"
     assert "<table" in explorer.table.value
     assert explorer.table.layout.display is None
@@ -200,6 +208,8 @@ def test_snapshot_markdown_is_plain_json_data(explorer):
 
 
 def test_origin_may_be_a_pytree(scenario):
-    ex = Explorer(scenario.problem, origin={"x": 5.0, "y": 0.0}, span=3.0, resolution=11, steps=20, n_starts=2)
+    ex = Explorer(
+        scenario.problem, origin={"x": 5.0, "y": 0.0}, span=3.0, resolution=11, steps=20, n_starts=2
+    )
     assert ex.state.origin == (5.0, 0.0)
     assert "⚠" not in ex.status.value

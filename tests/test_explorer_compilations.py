@@ -7,8 +7,6 @@ user moves them, and check that every change still took effect.
 
 from __future__ import annotations
 
-import types
-
 import numpy as np
 import pytest
 
@@ -35,8 +33,8 @@ def explorer():
 
 
 def _click(explorer, a, b):
-    points = types.SimpleNamespace(point_inds=[0], xs=[a], ys=[b])
-    explorer._on_click(explorer.main.data[0], points, None)
+    message = {"kind": "click", "x": a, "y": b, "uid": "slice-surface"}
+    explorer.main.receive(explorer.main, message, [])
 
 
 def _momentum(explorer):

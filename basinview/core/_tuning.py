@@ -90,6 +90,20 @@ def progress_bar(
     return tqdm(iterable, total=total, desc=desc, leave=False)
 
 
+class _CallbackBar:
+    """A bar that reports each finished call to ``report(done, total, desc)``."""
+
+    def __init__(self, report: Callable[[int, int, str], Any], total: int, desc: str) -> None:
+        self._report, self._total, self._desc, self._done = report, total, desc, 0
+
+    def update(self, n: int = 1) -> None:
+        self._done += n
+        self._report(self._done, self._total, self._desc)
+
+    def close(self) -> None:
+        pass
+
+
 class _NoBar:
     def update(self, n: int = 1) -> None:
         pass
@@ -99,9 +113,19 @@ class _NoBar:
 
 
 @contextlib.contextmanager
-def progress_counter(*, total: int, show: bool | None, desc: str) -> Iterator[Any]:
+def progress_counter(*, total: int, show: Any, desc: str) -> Iterator[Any]:
     """A ``tqdm.auto`` bar of ``total`` calls (advanced with ``.update(1)`` as each
-    finishes) when ``show`` is true, else an object whose ``update`` does nothing."""
+    finishes) when ``show`` is true, else an object whose ``update`` does nothing.
+
+    ``show`` may also be a callable ``show(done, total, desc)``: it is called
+    once before the first call and after each call finishes (a widget's
+    progress bar). An exception it raises stops the work between two calls
+    (a cancel button); what was collected stays collected.
+    """
+    if callable(show):
+        show(0, total, desc)
+        yield _CallbackBar(show, total, desc)
+        return
     if not show:
         yield _NoBar()
         return

@@ -1,10 +1,11 @@
-"""The Explorer widget (ipywidgets + plotly FigureWidget).
+"""The Explorer widget (ipywidgets controls + PlotView, our anywidget drawing with plotly.js).
 
 See :class:`Explorer`. The pure parts (view state, stage planning,
 computation) live in :mod:`.state` and :mod:`.compute` and import no widgets.
 """
 
 from .compute import ViewComputer, ViewResults
+from .plot import PlotView
 from .state import STAGES, ViewState, stages_to_update, state_from_settings
 from .widget import SIDE_VIEWS, Explorer
 
@@ -12,6 +13,7 @@ __all__ = [
     "SIDE_VIEWS",
     "STAGES",
     "Explorer",
+    "PlotView",
     "ViewComputer",
     "ViewResults",
     "ViewState",

@@ -36,6 +36,7 @@ from ..core import (
     compute_runs,
     compute_surface,
     compute_sweep,
+    evaluate_surface,
     explicit_starts,
     hessian_plane,
     random_plane,
@@ -175,8 +176,12 @@ class ViewComputer:
         """A :class:`Settings` record of the current view."""
         return record_view(self.problem, self.view(), self._results["runs"], note=note)
 
-    def basins(self, resolution: int) -> BasinMap:
-        """A basin map of the current view at its (first) learning rate and hyper-parameters."""
+    def basins(self, resolution: int, progress: Any = False) -> BasinMap:
+        """A basin map of the current view at its (first) learning rate and hyper-parameters.
+
+        ``progress(done, total, what)`` is called between the compiled calls
+        (and may raise to stop the work there).
+        """
         state = self.state
         assert state is not None
         return compute_basins(
@@ -185,15 +190,78 @@ class ViewComputer:
             resolution=resolution,
             learning_rate=state.learning_rate,
             hyper=state.hyper_dict,
-            progress=False,
+            progress=progress,
         )
 
-    def sweep(self, rates: Any) -> StepSizeSweep:
+    def sweep(self, rates: Any, progress: Any = None) -> StepSizeSweep:
         """A step-size sweep of the current starts over ``rates`` (the other hyper-parameters
-        at their first values)."""
+        at their first values). ``progress`` is told before and after (one call)."""
         state = self.state
         assert state is not None
-        return compute_sweep(self.problem, self.view(), rates, hyper=state.hyper_dict)
+        if callable(progress):
+            progress(0, 1, "sweep")
+        sweep = compute_sweep(self.problem, self.view(), rates, hyper=state.hyper_dict)
+        if callable(progress):
+            progress(1, 1, "sweep")
+        return sweep
+
+    def full_surface(self, state: ViewState, progress: Any = None) -> Surface:
+        """The surface of ``state`` (its plane must be the current one), call by call.
+
+        Used for slow surfaces: computed apart from :meth:`update` (in a worker)
+        and adopted with :meth:`adopt_surface` if the view is still ``state``.
+        """
+        view = state.view_spec(self._results["plane"], self._results["starts"])
+        return evaluate_surface(
+            self.problem,
+            view.plane,
+            span=view.span,
+            resolution=view.resolution,
+            progress=progress,
+        )
+
+    def adopt_surface(self, state: ViewState, surface: Surface) -> bool:
+        """Keep ``surface`` as the current view's surface if its slice and span are still ``state``'s."""
+        current = self._state
+        if current is None or {"plane", "surface"} & set(stages_to_update(state, current)):
+            return False  # the view moved to another slice or span meanwhile
+        self._results = {**self._results, "surface": surface}
+        self.counts["surface"] += 1
+        return True
+
+    def update_without_surface(self, state: ViewState) -> tuple[ViewResults, tuple[str, ...]]:
+        """Like :meth:`update` but the surface stage shows a coarse preview, not the full grid.
+
+        Returns the results (with ``preview=True`` when the surface is coarse) and the
+        stages run; the full surface comes from :meth:`full_surface`.
+        """
+        state.check()
+        stages = self.stages_for(state)
+        if "surface" not in stages:
+            return self.update(state)
+        new = dict(self._results)
+        for stage in ("plane", "starts", "runs", "minima"):
+            if stage not in stages:
+                continue
+            t0 = time.perf_counter()
+            if stage == "plane":
+                new["plane"] = self._plane(state)
+            elif stage == "starts":
+                new["starts"] = self._starts(state, new["plane"])
+            elif stage == "runs":
+                new["runs"] = self._runs(state.view_spec(new["plane"], new["starts"]))
+            else:
+                new["minima"] = compute_minima(self.problem, new["runs"])
+            self.seconds[stage] = time.perf_counter() - t0
+            self.counts[stage] += 1
+        view = state.view_spec(new["plane"], new["starts"])
+        coarse = min(state.resolution, PREVIEW_RESOLUTION)
+        new["surface"] = compute_surface(self.problem, view, resolution=coarse)
+        self._results = new
+        self._state = state
+        results = self.results
+        assert results is not None
+        return ViewResults(**{**results.__dict__, "preview": True}), stages
 
     # ---------------------------------------------------------------- stages
     def _plane(self, state: ViewState) -> Plane:

@@ -1,16 +1,20 @@
-"""The Explorer: an ipywidgets view of a problem's loss surface and descent runs.
+"""The Explorer: controls, a status line and two figures for one problem.
 
 The widget holds view state only. Its handlers read the controls into a
 :class:`ViewState`, let :class:`ViewComputer` rerun just the stages the
 change needs, build figures with the pure functions of
-:mod:`basinview.figures` and copy them into two live figures. Errors are
-shown in the status line; the last good view stays.
+:mod:`basinview.figures` and show them in two :class:`PlotView` widgets
+(figure state as data, drawn by plotly.js). Long work (basin maps, sweeps,
+slow surfaces) runs in a worker thread with a progress bar and a cancel
+button (:mod:`.long_work`). Errors are shown in the status line; the last
+good view stays.
 """
 
 from __future__ import annotations
 
 import contextlib
 import html
+import threading
 import time
 import traceback
 import warnings
@@ -19,16 +23,13 @@ from pathlib import Path
 from typing import Any
 
 import ipywidgets as w
-import numpy as np
 import pandas as pd
-import plotly.graph_objects as go
 from IPython.display import display
 
 from .. import figures
 from ..core import (
     BasinviewError,
     MinimaWarning,
-    Plane,
     Problem,
     Settings,
     SettingsError,
@@ -37,82 +38,28 @@ from ..core import (
 )
 from .compute import ViewComputer, ViewResults
 from .controls import Controls, respan
+from .long_work import LongWork, letters, view_key
+from .options import initial_state
+from .plot import PlotView
 from .records import SnapshotLog
-from .state import ViewState, default_span, state_from_settings
-from .sync import FigureView, source_uids, sync_figure
+from .state import ViewState, state_from_settings
+from .tasks import Worker
 
 __all__ = ["SIDE_VIEWS", "Explorer"]
 
 SIDE_VIEWS = ("relief", "loss curves", "basins", "step sizes", "runs", "minima")
 
 
-def _letters(minima: Any) -> str:
-    """`` · critical points A (minimum), B (saddle)`` for the status line (letters as in every view)."""
-    if minima is None or not len(minima):
-        return ""
-    return " · critical points " + ", ".join(
-        f"{name} ({kind})" for name, kind in zip(minima.labels, minima.kind)
-    )
-
-
-def _initial_state(problem: Problem, plane: Any, kw: dict[str, Any]) -> ViewState:
-    kind, fields = "axes", {}
-    if isinstance(plane, Plane):
-        spec = plane.spec
-        kind = spec.get("kind", "axes")
-        fields["origin"] = spec.get("origin")
-        if kind == "axes":
-            fields.update(x_label=spec["x"], y_label=spec["y"])
-        elif kind == "random":
-            fields.update(plane_seed=spec.get("seed", 0), normalise=spec.get("normalise", "filter"))
-        elif kind == "hessian":
-            fields.update(plane_seed=spec.get("seed", 0))
-        else:
-            raise BasinviewError(
-                f"the Explorer shows axes, random and Hessian planes; got a {kind!r} plane."
-            )
-    elif plane is not None:
-        kind = str(plane)
-    if kind == "axes" and "x_label" not in fields and "x_label" not in kw:
-        labels = problem.labels
-        fields.update(
-            x_label=kw.pop("x", labels[0]), y_label=kw.pop("y", labels[min(1, len(labels) - 1)])
-        )
-    span = kw.pop("span", None)
-    origin = kw.get("origin")
-    if origin is not None:
-        if isinstance(origin, (tuple, list)) and all(
-            isinstance(v, (int, float, np.number)) for v in origin
-        ):
-            origin = np.asarray(origin, dtype=float)  # a flat vector (as ViewState stores it)
-        kw["origin"] = problem.flatten(origin, what="plane origin")
-    if "starts" in kw:
-        starts = kw.pop("starts")
-        fields["start_points"] = [problem.flatten(p, what="start") for p in starts]
-    fields.update({k: v for k, v in kw.items()})
-    state = ViewState(plane_kind=kind).replace(**fields)
-    # Spans are plane coordinates (parameter values on an axes plane): a half-width, or
-    # the default size, is taken around the plane's centre.
-    state = respan(
-        problem, state, state, span if span is not None else _default_half(problem, kind)
-    )
-    rule = get_rule(state.optimizer)
-    return state.replace(optimizer=rule.name, hyper={**rule.defaults, **state.hyper_dict})
-
-
-def _default_half(problem: Problem, kind: str) -> tuple[float, float]:
-    """Half-widths of the first span (around the plane's centre)."""
-    (a0, a1), (b0, b1) = default_span(problem, kind)
-    return ((a1 - a0) / 2, (b1 - b0) / 2)
-
-
-class Explorer:
+class Explorer(LongWork):
     """Interactive loss-surface explorer for a :class:`~basinview.core.Problem`.
 
     Args:
         problem: the problem.
         plane: ``"axes"`` (default), ``"random"``, ``"hessian"`` or a Plane built
             with :func:`axes_plane`, :func:`random_plane` or :func:`hessian_plane`.
+        background: run long work (basin maps, sweeps, slow surfaces started
+            from the buttons or controls) in a worker thread, so the notebook
+            stays responsive (default True). False runs it in the caller.
         **options: initial values of the view: ``x``, ``y`` (axes labels),
             ``span``, ``resolution``, ``optimizer``, ``learning_rate``,
             ``hyper`` (dict), ``steps``, ``n_starts``, ``start_scale``,
@@ -128,7 +75,9 @@ class Explorer:
     shows how far) and a low point of the slice need not be a minimum.
     """
 
-    def __init__(self, problem: Problem, plane: Any = None, **options: Any) -> None:
+    def __init__(
+        self, problem: Problem, plane: Any = None, *, background: bool = True, **options: Any
+    ) -> None:
         self.problem = problem
         self.computer = ViewComputer(problem)
         self.log = SnapshotLog()
@@ -136,17 +85,31 @@ class Explorer:
         self._basins: tuple[ViewState, Any] | None = None
         self._sweep: tuple[ViewState, Any] | None = None
         self._quiet = False
-        state = _initial_state(problem, plane, dict(options))
+        self._lock = threading.RLock()
+        self._cancelled_by_user = False
+        self._task_result: Any = None
+        self._task_error: BaseException | None = None
+        state = initial_state(problem, plane, dict(options))
         self.controls = Controls(problem, state, get_rule(state.optimizer))
-        self.status = w.HTML(value="")
+        self.status = w.HTML(value="", layout=w.Layout(width="100%"))
         self.status.add_class("bv-status")
         self.progress = w.IntProgress(
-            value=0, min=0, max=4, layout=w.Layout(width="300px", display="none")
+            value=0, min=0, max=1, layout=w.Layout(width="200px", visibility="hidden")
         )
-        self.main = FigureView(layout={"height": 560, "width": 720})
+        self.progress.add_class("bv-progress")
+        self.cancel_button = w.Button(
+            description="cancel",
+            disabled=True,
+            tooltip="stop the long work running now (the view keeps its last good state)",
+            layout=w.Layout(width="90px"),
+        )
+        self.cancel_button.add_class("bv-cancel")
+        self.main = PlotView(height=560)
         self.main.add_class("bv-main")
-        self.side = FigureView(layout={"height": 460, "width": 720})
+        self.side = PlotView(height=460)
+        self.side.add_class("bv-side")
         self.table = w.HTML(layout=w.Layout(display="none", max_height="460px", overflow="auto"))
+        self.table.add_class("bv-table")
         self.view = w.ToggleButtons(options=list(SIDE_VIEWS), value="relief", description="view")
         self.basins_button = w.Button(
             description="map basins", tooltip="run descent from every node of a grid on the slice"
@@ -166,7 +129,8 @@ class Explorer:
         self.save_button = w.Button(
             description="save JSON", tooltip="write the latest snapshot to the file named here"
         )
-        self.save_name = w.Text(value="basinview-settings.json", layout=w.Layout(width="260px"))
+        self.save_name = w.Text(value="basinview-settings.json", layout=w.Layout(width="300px"))
+        self.worker = Worker(self._on_progress, self._on_task_done, background=background)
         self._wire()
         self._state_seed = state
         self._apply(state)
@@ -179,12 +143,16 @@ class Explorer:
         self._observe_hyper()
         self.controls.clear_clicks.on_click(lambda _: self._guard(self._forget_clicks))
         self.view.observe(lambda _: self._guard(self._draw_side), names="value")
-        self.basins_button.on_click(lambda _: self._guard(self.map_basins))
-        self.sweep_button.on_click(lambda _: self._guard(self.sweep_step_sizes))
+        self.basins_button.on_click(lambda _: self._guard(lambda: self.map_basins(wait=False)))
+        self.sweep_button.on_click(lambda _: self._guard(lambda: self.sweep_step_sizes(wait=False)))
+        self.cancel_button.on_click(lambda _: self._guard(self.cancel))
         self.record_button.on_click(lambda _: self._guard(lambda: self.record(self.note.value)))
         self.save_button.on_click(
             lambda _: self._guard(lambda: self.save_snapshot(self.save_name.value))
         )
+        self.main.on_click(self._on_map_click)
+        for plot in (self.main, self.side):
+            plot.on_error(self._report)
 
     def _observe_hyper(self) -> None:
         for c in self.controls.hyper_box.children:
@@ -195,17 +163,28 @@ class Explorer:
 
     @property
     def widget(self) -> w.Widget:
-        """The whole Explorer as one ipywidgets box."""
+        """The whole Explorer as one ipywidgets box.
+
+        Left (or on top, when the page is narrower than about 1100 px): the
+        status line, the progress of long work with its cancel button, the
+        controls and the record actions. Right (or below): the figures, which
+        fit the width they are given.
+        """
         if not hasattr(self, "_widget"):
-            actions = w.HBox([self.record_button, self.note, self.save_button, self.save_name])
-            side_tools = w.HBox([self.basins_button, self.basins_resolution, self.sweep_button])
+            busy = w.HBox(
+                [self.progress, self.cancel_button], layout=w.Layout(align_items="center")
+            )
+            actions = w.VBox([self.record_button, self.note, self.save_button, self.save_name])
+            panel = w.VBox([self.status, busy, self.controls.box(), actions])
+            panel.add_class("bv-panel")
+            side_tools = w.HBox(
+                [self.basins_button, self.basins_resolution, self.sweep_button],
+                layout=w.Layout(flex_flow="row wrap"),
+            )
             right = w.VBox([self.main, self.view, side_tools, self.side, self.table])
-            self._widget = w.VBox(
-                [
-                    w.HBox([self.controls.box(), right]),
-                    w.HBox([self.status, self.progress]),
-                    actions,
-                ]
+            right.add_class("bv-figures")
+            self._widget = w.HBox(
+                [panel, right], layout=w.Layout(flex_flow="row wrap", width="100%")
             )
             self._widget.add_class("bv-explorer")
         return self._widget
@@ -263,54 +242,87 @@ class Explorer:
         """Run ``action``; show any error in the status line and keep the last good view."""
         try:
             return action()
-        except BasinviewError as exc:
-            self._error(str(exc))
         except Exception as exc:  # an observer must never die: report and keep going
-            self.last_error = traceback.format_exc()
-            self._error(f"unexpected {type(exc).__name__}: {exc}")
-        finally:
-            self.progress.layout.display = "none"
+            self._report(exc)
         return None
 
+    def _report(self, exc: BaseException) -> None:
+        """Show ``exc`` in the status line (never as a traceback in the kernel's log)."""
+        if isinstance(exc, BasinviewError):
+            self._error(str(exc))
+            return
+        self.last_error = "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+        self._error(f"unexpected {type(exc).__name__}: {exc}")
+
     def _error(self, message: str) -> None:
-        self.status.value = f"<span style='color:#B00020'>⚠ {html.escape(message)}</span> (the view shows the last good settings)"
+        self.status.value = (
+            f"<span style='color:#B00020'>⚠ {html.escape(message)}</span> "
+            "(the view shows the last good settings)"
+        )
         with self._suspended():
             self.controls.show(self.state)
 
     def _say(self, message: str) -> None:
         self.status.value = html.escape(message)
 
+    def describe(self, state: ViewState | None = None) -> str:
+        """The settings a status line names: rule, learning rate, steps, starts, slice."""
+        s = state or self.state
+        hyper = "".join(f", {k} {v:.3g}" for k, v in s.hyper)
+        if s.plane_kind == "axes":
+            plane = f"{s.x_label} × {s.y_label}"
+        else:
+            plane = f"{s.plane_kind} plane (seed {s.plane_seed})"
+        return (
+            f"{s.optimizer}, learning rate {s.learning_rate:.3g}{hyper}, {s.steps} steps, {plane}"
+        )
+
     # ------------------------------------------------------------ compute
     def _apply(self, state: ViewState, *, show: bool = False) -> None:
         state.check()
+        self._before_change(state)
         t0 = time.perf_counter()
-        with warnings.catch_warnings(record=True) as caught:
+        with self._lock, warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", MinimaWarning)
-            if self.computer.state is not None and self.computer.wants_preview(state):
-                self._say("coarse preview; computing full resolution…")
-                self._draw_main(self.computer.preview(state))
-            results, stages = self.computer.update(state)
+            slow = self.computer.state is not None and self.computer.wants_preview(state)
+            later = slow and self.worker.background
+            if later:
+                results, stages = self.computer.update_without_surface(state)
+            else:
+                if slow:
+                    self._say("coarse preview; computing full resolution…")
+                    self._draw_main(self.computer.preview(state))
+                results, stages = self.computer.update(state)
         notes = self._pass_on(caught)
         if show:
             with self._suspended():
                 self.controls.show(state)
         if stages:
             self._draw_main(results)
-            if self.view.value in ("relief", "loss curves", "runs", "minima") or stages:
-                self._draw_side()
+            self._draw_side()
         elapsed = time.perf_counter() - t0
+        self._say(self._summary(results, stages, elapsed, notes))
+        if later:
+            self._start_surface(state)
+
+    def _summary(
+        self, results: ViewResults, stages: tuple[str, ...], elapsed: float, notes: list[str]
+    ) -> str:
         runs = results.runs
         counts = pd.Series(runs.status).value_counts().to_dict()
         summary = ", ".join(f"{v} {k}" for k, v in counts.items())
-        found = _letters(results.minima)
+        found = letters(results.minima)
         if results.minima is None and not notes and not (runs.status == "converged").any():
-            notes.append(
+            notes = [
+                *notes,
                 "no run converged, so no critical point is marked: run more steps or "
-                "loosen the tolerance"
-            )
-        self._say(
-            f"{len(runs)} runs: {summary}{found} · updated {', '.join(stages) or 'nothing'} "
-            f"in {elapsed:.2f} s" + "".join(f" · {n}" for n in notes)
+                "loosen the tolerance",
+            ]
+        coarse = " · coarse preview, computing full resolution…" if results.preview else ""
+        return (
+            f"{self.describe(results.state)} · {len(runs)} runs: {summary}{found} · updated "
+            f"{', '.join(stages) or 'nothing'} in {elapsed:.2f} s{coarse}"
+            + "".join(f" · {n}" for n in notes)
         )
 
     @staticmethod
@@ -327,10 +339,10 @@ class Explorer:
     def _forget_clicks(self) -> None:
         self._apply(self.state.replace(start_points=()))
 
-    def _on_click(self, trace: Any, points: Any, selector: Any) -> None:
-        if not points.point_inds:
-            return
-        self._guard(lambda: self.add_start(points.xs[0], points.ys[0]))
+    def _on_map_click(self, a: float, b: float, uid: str) -> None:
+        if uid != "slice-surface":
+            return  # a click on a path or marker: not a place on the map
+        self._guard(lambda: self.add_start(a, b))
 
     def add_start(self, a: float, b: float) -> None:
         """Add a start at plane coordinates ``(a, b)``, the numbers the map's axes show.
@@ -350,19 +362,13 @@ class Explorer:
         fig = figures.slice_figure(
             results.surface, results.runs, minima=results.minima, title=title
         )
-        if sync_figure(self.main, fig) or not getattr(self, "_click_bound", False):
-            for trace, uid in zip(self.main.data, source_uids(self.main)):
-                if uid == "slice-surface":
-                    trace.on_click(self._on_click)
-            self._click_bound = True
+        self.main.show(fig, uirevision=view_key("map", results.state))
 
     def _draw_side(self) -> None:
         results = self.results
         if results is None:
             return
         view = self.view.value
-        self.table.layout.display = "none"
-        self.side.layout.height = 460
         if view in ("runs", "minima"):
             frame = (
                 results.runs.table
@@ -370,11 +376,13 @@ class Explorer:
                 else (results.minima.table if results.minima is not None else pd.DataFrame())
             )
             self.table.value = frame.head(500).to_html(
-                float_format=lambda x: f"{x:.4g}", index=False, border=0
+                float_format=lambda x: f"{x:.4g}", index=False, border=0, na_rep=""
             )
             self.table.layout.display = None
-            sync_figure(self.side, go.Figure(layout={"height": 10}))
+            self.side.layout.display = "none"
             return
+        self.table.layout.display = "none"
+        self.side.layout.display = None
         if view == "relief":
             fig = figures.relief_figure(results.surface, results.runs, minima=results.minima)
         elif view == "loss curves":
@@ -391,69 +399,26 @@ class Explorer:
                 figures.step_size_figure,
                 "press “sweep step sizes” to rerun the starts over a range of learning rates",
             )
-        sync_figure(self.side, fig)
+        self.side.show(fig, uirevision=view_key(view, results.state))
 
-    def _cached_figure(self, cached: Any, build: Any, hint: str) -> go.Figure:
+    def _cached_figure(self, cached: Any, build: Any, hint: str) -> Any:
         if cached is None:
-            return go.Figure(layout={"title": {"text": hint}, "height": 200})
+            return {"data": [], "layout": {"title": {"text": hint}, "height": 200}}
         state, value = cached
         fig = build(value)
         if state != self.state:
             fig.update_layout(
-                title_text=f"{fig.layout.title.text or ''} (computed for earlier settings; press again to update)"
+                title_text=f"{fig.layout.title.text or ''} (computed for earlier settings; "
+                "press again to update)"
             )
         return fig
-
-    # ------------------------------------------------------------ analyses
-    def map_basins(self, resolution: int | None = None) -> Any:
-        """Run descent from a grid of starts on the slice; show and return the basin map."""
-        state = self.state
-        res = int(resolution or self.basins_resolution.value)
-        self._say(f"mapping basins from {res * res} starts…")
-        self.progress.layout.display = None
-        self.progress.value = 1
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", MinimaWarning)
-            bm = self.computer.basins(res)
-        notes = self._pass_on(caught)
-        self.progress.value = 4
-        self._basins = (state, bm)
-        self.view.value = "basins"
-        self._draw_side()
-        self._say(
-            f"basin map: {len(bm.minima)} critical points{_letters(bm.minima)} from "
-            f"{res * res} starts" + "".join(f" · {n}" for n in notes)
-        )
-        return bm
-
-    def sweep_step_sizes(self, learning_rates: Any = None) -> Any:
-        """Rerun the current starts over a range of learning rates; show and return the sweep."""
-        state = self.state
-        rates = (
-            learning_rates
-            if learning_rates is not None
-            else state.learning_rate * np.geomspace(1 / 30, 30, 15)
-        )
-        self._say(f"sweeping {len(rates)} learning rates…")
-        self.progress.layout.display = None
-        self.progress.value = 1
-        sweep = self.computer.sweep(rates)
-        self.progress.value = 4
-        self._sweep = (state, sweep)
-        self.view.value = "step sizes"
-        self._draw_side()
-        bound = "none" if sweep.predicted_bound is None else f"{sweep.predicted_bound:.4g}"
-        self._say(
-            f"step sizes: predicted bound {bound}, largest rate without divergence {sweep.observed_bound}"
-        )
-        return sweep
 
     # ------------------------------------------------------------ records
     def record(self, note: str = "") -> Settings:
         """Store the current settings as a snapshot (shown under the widget) and return them."""
         settings = self.computer.settings(note=note)
         self.log.add(settings)
-        self._say(f"recorded snapshot {len(self.log)}")
+        self._say(f"recorded snapshot {len(self.log)} · {self.describe()}")
         return settings
 
     @property

@@ -6,27 +6,19 @@ every call, and layout changes after traces exist go through plotly's
 relayout checks: tens of milliseconds per figure, which the Explorer pays
 on every slider move. The figure functions therefore write traces and
 layout as dicts into a :class:`FigureSpec` and call :meth:`FigureSpec.figure`
-once at the end, which creates the ``go.Figure`` without validation.
-
-Skipping validation hides no mistake: ``tests/test_figures_valid.py``
-rebuilds every figure from its dict with full validation. Set the
-environment variable ``BASINVIEW_VALIDATE_FIGURES=1`` (or pass
-``validate=True``) to validate at build time while developing. The returned
-figure validates later edits (``fig.update_layout(...)``) as usual.
+once at the end, which creates the ``go.Figure`` (validated once, by
+plotly's public constructor). :meth:`FigureSpec.to_dict` gives the same
+figure as plain data.
 """
 
 from __future__ import annotations
 
-import os
 from collections.abc import Mapping
 from typing import Any
 
 import plotly.graph_objects as go
 
-__all__ = ["VALIDATE_ENV", "FigureSpec", "deep_merge"]
-
-#: Environment switch: a true value ("1", "true", "yes") validates at build time.
-VALIDATE_ENV = "BASINVIEW_VALIDATE_FIGURES"
+__all__ = ["FigureSpec", "deep_merge"]
 
 
 def deep_merge(target: dict[str, Any], update: Mapping[str, Any]) -> dict[str, Any]:
@@ -47,10 +39,6 @@ def deep_merge(target: dict[str, Any], update: Mapping[str, Any]) -> dict[str, A
         else:
             target[key] = value
     return target
-
-
-def _validate_from_env() -> bool:
-    return os.environ.get(VALIDATE_ENV, "").strip().lower() in ("1", "true", "yes", "on")
 
 
 def _template(ours: Any) -> Any:
@@ -108,32 +96,25 @@ class FigureSpec:
         """Append one shape (plotly's shape properties)."""
         self.layout.setdefault("shapes", []).append(props)
 
-    def figure(self, validate: bool | None = None) -> go.Figure:
-        """Create the plotly figure once.
-
-        Args:
-            validate: validate every property while creating the figure
-                (slow: tens of milliseconds). Default: only when the
-                environment variable ``BASINVIEW_VALIDATE_FIGURES`` is set.
-
-        Returns:
-            A ``go.Figure``; edits made to it afterwards are validated.
-        """
-        if validate is None:
-            validate = _validate_from_env()
+    def to_dict(self) -> dict[str, Any]:
+        """The figure as plain data: ``{"data": [...], "layout": {...}}`` (what plotly.js draws)."""
         layout = dict(self.layout)
         if "template" in layout:
             layout["template"] = _template(layout["template"])
-        spec: dict[str, Any] = {"data": self.data, "layout": layout}
+        return {"data": list(self.data), "layout": layout}
+
+    def figure(self, validate: bool | None = None) -> go.Figure:
+        """Create the plotly figure once, through plotly's public constructor.
+
+        Args:
+            validate: kept for callers of earlier versions; plotly's public
+                constructor always validates, so every figure is checked.
+
+        Returns:
+            A ``go.Figure``.
+        """
+        spec: dict[str, Any] = self.to_dict()
         if self.grid is not None:
+            # a subplot grid for fig.add_trace(row=, col=) (figures/curves.py sets it)
             spec["_grid_str"], spec["_grid_ref"] = self.grid
-        if validate:
-            return go.Figure(spec)
-        fig = go.Figure(spec, _validate=False)
-        # Objects created without validation keep skipping it; switch it back on
-        # so a caller's later edits are checked as on any plotly figure.
-        fig._validate = True
-        fig._layout_obj._validate = True
-        for trace in fig.data:
-            trace._validate = True
-        return fig
+        return go.Figure(spec)

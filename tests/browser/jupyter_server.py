@@ -33,8 +33,18 @@ CHROMIUM_ARGS = [
 
 # front-end name -> (jupyter subcommand, extra options, notebook URL path template)
 FRONTENDS = {
-    "lab": ("lab", ["--LabApp.news_url=None"], "/lab/tree/{name}?token={token}&reset"),
-    "notebook7": ("notebook", [], "/notebooks/{name}?token={token}"),
+    # The app object on window (window.jupyterapp) lets the test open the side panel
+    # and the log console through the front-end's public commands.
+    "lab": (
+        "lab",
+        ["--LabApp.news_url=None", "--LabApp.expose_app_in_browser=True"],
+        "/lab/tree/{name}?token={token}&reset",
+    ),
+    "notebook7": (
+        "notebook",
+        ["--JupyterNotebookApp.expose_app_in_browser=True"],
+        "/notebooks/{name}?token={token}",
+    ),
 }
 
 
