@@ -801,7 +801,7 @@ def test_bad_widget_input_keeps_the_last_good_view(explorer_problem, case, tmp_p
     snapshot = ex.record("kept")
     folder = _user_folder(tmp_path)
     before_files = folder_state(folder)
-    shown = lambda: (ex.main.traces, ex.main.grids, ex.main.plot_layout)  # noqa: E731
+    shown = lambda: (ex.main.traces, ex.main.grids, ex.main.plot_layout)
     state, figure, table = ex.state, shown(), ex.snapshots.copy()
     raised = None
     try:

@@ -25,10 +25,7 @@ PATTERNS = {
 
 # Known until their owners change them (the integrator deletes each line when it goes;
 # the test fails if a listed finding is no longer there, so none stays by accident).
-PENDING = {
-    ("figures/curves.py", "private plotly module or attribute"): "plotly._subplots.SubplotRef",
-    ("figures/build.py", "plotly private constructor arguments"): "the subplot grid of curves.py",
-}
+PENDING: dict[tuple[str, str], str] = {}
 
 
 # Store names are also common names of our own (``self._data``): they count only in

@@ -73,7 +73,6 @@ class FigureSpec:
     def __init__(self, layout: Mapping[str, Any] | None = None) -> None:
         self.data: list[dict[str, Any]] = []
         self.layout: dict[str, Any] = {}
-        self.grid: tuple[str, Any] | None = None
         if layout:
             self.update_layout(layout)
 
@@ -113,8 +112,4 @@ class FigureSpec:
         Returns:
             A ``go.Figure``.
         """
-        spec: dict[str, Any] = self.to_dict()
-        if self.grid is not None:
-            # a subplot grid for fig.add_trace(row=, col=) (figures/curves.py sets it)
-            spec["_grid_str"], spec["_grid_ref"] = self.grid
-        return go.Figure(spec)
+        return go.Figure(self.to_dict())
