@@ -39,6 +39,16 @@ ARTIFACTS = Path(os.environ.get("BASINVIEW_ARTIFACTS", ROOT / "artifacts")) / "b
 TIMEOUT_MS = 120_000
 
 
+# Errors the front end raises by itself, with no widget on the page: (message, the
+# front end's own bundle it is raised in). Notebook 7.6.5 raises the first while loading
+# its settings on a notebook holding nothing but print(1) (seen 2026-12-02 in chromium,
+# by opening such a notebook with this file's server and page set-up); JupyterLab
+# raises none. An error from our own code (plot.js, anywidget) never matches these.
+FRONTEND_ERRORS = (
+    ("Cannot read properties of undefined (reading 'schema')", "/static/notebook/notebook_core."),
+)
+
+
 def _runs_in_status(page) -> int:
     text = page.locator(".bv-status").inner_text(timeout=TIMEOUT_MS)
     match = re.search(r"(\d+) runs", text)
@@ -212,8 +222,14 @@ def test_explorer_in_browser(tmp_path, frontend):
                 _long_session(page, front, shots)
                 _record_save_reopen(page, server, front, shots)
                 # Failed loads of the server's optional resources (e.g. a missing
-                # favicon or translation file) are the server's, not the page's code.
-                ours = [e for e in errors if "Failed to load resource" not in e]
+                # favicon or translation file) are the server's, not the page's code;
+                # so are the front end's own start-up errors listed in FRONTEND_ERRORS.
+                ours = [
+                    e
+                    for e in errors
+                    if "Failed to load resource" not in e
+                    and not any(msg in e and where in e for msg, where in FRONTEND_ERRORS)
+                ]
                 (shots / "console-errors.txt").write_text("\n".join(errors))
                 assert not ours, ours
             except Exception:
