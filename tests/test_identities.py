@@ -163,7 +163,8 @@ def test_explorer_click_on_the_mirror_minimum_keeps_a(x64):
     assert sorted(rows) == ["A", "B"]
     np.testing.assert_allclose(rows["A"], before.points[0], atol=1e-6)
     assert rows["B"][0] < 0
-    legend = [t.name for t in ex.main.data if (t.name or "").startswith(("A:", "B:"))]
+    names = [t.get("name") or "" for t in ex.main.figure_data()]
+    legend = [n for n in names if n.startswith(("A:", "B:"))]
     assert any(n.startswith("A:") for n in legend) and any(n.startswith("B:") for n in legend)
 
 

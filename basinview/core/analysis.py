@@ -154,7 +154,7 @@ def compute_runs(
         min_runs=min_runs,
         sizes=view.sizes if "descent_runs_per_call" in view.sizes else None,
         sharpness_every=int(track.get("every", 0)),
-        **({"sharpness_iterations": int(track["iterations"])} if "iterations" in track else {}),
+        sharpness_iterations=int(track.get("iterations", 2)),  # 2: descend's default
     )
 
 

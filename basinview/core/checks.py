@@ -28,14 +28,17 @@ MAX_RESOLUTION = 4001
 """Most grid points per axis of a surface or basin map."""
 
 
-def check_int(value: Any, name: str, low: int, high: int) -> int:
-    """``value`` as an int from ``low`` to ``high`` (booleans refused)."""
+def check_int(value: Any, name: str, low: int, high: int, hint: str = "") -> int:
+    """``value`` as an int from ``low`` to ``high`` (booleans refused); ``hint`` ends the message."""
     if (
         isinstance(value, bool)
         or not isinstance(value, (int, np.integer))
         or not low <= value <= high
     ):
-        raise ParameterError(f"{name} must be an integer from {low} to {high}; got {value!r}.")
+        tail = f" {hint}" if hint else ""
+        raise ParameterError(
+            f"{name} must be an integer from {low} to {high}; got {value!r}.{tail}"
+        )
     return int(value)
 
 

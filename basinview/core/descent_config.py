@@ -18,6 +18,7 @@ from typing import Any
 import jax
 import numpy as np
 
+from .checks import check_int
 from .cost_model import DescentSizes
 from .errors import ParameterError
 from .optimizers import UpdateRule, check_hyper
@@ -113,15 +114,7 @@ class DescentConfig:
 
 
 def _positive_int(name: str, value: Any, low: int, high: int, hint: str) -> int:
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, (int, np.integer))
-        or not low <= value <= high
-    ):
-        raise ParameterError(
-            f"{name} must be an integer from {low} to {high}; got {value!r}. {hint}"
-        )
-    return int(value)
+    return check_int(value, name, low, high, hint)
 
 
 def _check_steps(steps: Any) -> int:

@@ -64,18 +64,16 @@ from __future__ import annotations
 
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any, NamedTuple
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 import pandas as pd
 
+from .checks import check_int
 from .curvature import adaptive_threshold, stability_bound
 from .errors import ParameterError
-
-if TYPE_CHECKING:  # pragma: no cover
-    from .runs import Runs
 
 __all__ = [
     "LoopTracker",
@@ -118,18 +116,6 @@ class SharpnessTracking:
         return np.arange(0, budget + 1, self.every)
 
 
-def _count(value: Any, name: str, low: int, high: int, hint: str) -> int:
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, (int, np.integer))
-        or not low <= value <= high
-    ):
-        raise ParameterError(
-            f"{name} must be an integer from {low} to {high}; got {value!r}. {hint}"
-        )
-    return int(value)
-
-
 def sharpness_tracking(
     every: Any, iterations: Any = 2, first_iterations: Any = None, *, steps: int
 ) -> SharpnessTracking | None:
@@ -138,7 +124,7 @@ def sharpness_tracking(
         isinstance(every, (int, np.integer)) and not isinstance(every, bool) and every == 0
     ):
         return None
-    k = _count(
+    k = check_int(
         every,
         "sharpness_every",
         1,
@@ -146,7 +132,7 @@ def sharpness_tracking(
         "It is the stride in steps between sharpness records (0 or None: none); it cannot "
         "exceed the step budget.",
     )
-    m = _count(
+    m = check_int(
         iterations,
         "sharpness_iterations",
         1,
@@ -154,7 +140,7 @@ def sharpness_tracking(
         "Each record costs this many Hessian-vector products per run; 2-6 is usual.",
     )
     m0 = max(16, 4 * m) if first_iterations is None else first_iterations
-    m0 = _count(
+    m0 = check_int(
         m0,
         "sharpness_first_iterations",
         m,
@@ -377,7 +363,7 @@ def sharpness_threshold(optimizer: str, hyper: Mapping[str, float]) -> tuple[flo
     return (None if c is None else c / lr), "sharpness"
 
 
-def sharpness_frame(runs: Runs) -> pd.DataFrame:
+def sharpness_frame(runs: Any) -> pd.DataFrame:
     """Tidy table of the sharpness records: one row per run and recorded iterate.
 
     Columns: ``run``, ``step``, the run's hyper-parameters, ``status``,
