@@ -84,6 +84,19 @@ def test_learning_rate_change_reruns_descent_not_the_surface(explorer):
     assert explorer.state.learning_rate == pytest.approx(1.5)
 
 
+def test_status_names_the_start_draw_so_each_start_change_reads_differently(explorer):
+    # A new seed or spread gives new runs; the status line must say which draw it shows
+    # (two draws whose summaries matched once left the status unchanged: a user could
+    # not tell the change had been applied).
+    explorer.controls.start_seed.value = 3
+    seeded = explorer.status.value
+    assert "seed 3" in seeded
+    explorer.controls.start_scale.value = 2.0
+    assert "spread 2" in explorer.status.value and explorer.status.value != seeded
+    explorer.add_start(0.1, 0.2)
+    assert "+ 1 clicked" in explorer.status.value
+
+
 def test_resolution_change_recomputes_only_the_surface(explorer):
     counts = dict(explorer.computer.counts)
     explorer.controls.resolution.value = 25

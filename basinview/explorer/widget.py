@@ -277,6 +277,18 @@ class Explorer(LongWork):
             f"{s.optimizer}, learning rate {s.learning_rate:.3g}{hyper}, {s.steps} steps, {plane}"
         )
 
+    @staticmethod
+    def describe_starts(state: ViewState) -> str:
+        """Where the runs start: the random draw (count, spread, seed) and clicked starts."""
+        parts = []
+        if state.n_starts:
+            parts.append(
+                f"{state.n_starts} random (spread {state.start_scale:.3g}, seed {state.start_seed})"
+            )
+        if state.start_points:
+            parts.append(f"{len(state.start_points)} clicked")
+        return " + ".join(parts) or "none"
+
     # ------------------------------------------------------------ compute
     def _apply(self, state: ViewState, *, show: bool = False) -> None:
         state.check()
@@ -320,7 +332,8 @@ class Explorer(LongWork):
             ]
         coarse = " · coarse preview, computing full resolution…" if results.preview else ""
         return (
-            f"{self.describe(results.state)} · {len(runs)} runs: {summary}{found} · updated "
+            f"{self.describe(results.state)} · {len(runs)} runs: {summary}{found}"
+            f" · starts: {self.describe_starts(results.state)} · updated "
             f"{', '.join(stages) or 'nothing'} in {elapsed:.2f} s{coarse}"
             + "".join(f" · {n}" for n in notes)
         )
