@@ -29,9 +29,11 @@ neural networks typically sharpens until the sharpness reaches ``2 / lr`` and
 then hovers there (the edge of stability); adaptive rules do the same with the
 preconditioned sharpness.
 
-Cost and memory: each record costs ``iterations`` Hessian-vector products per
-run (about 2-3 gradients each; twice that for adaptive rules), on the full
-data even when runs take minibatch steps. The loop carries one (two for
+Cost and memory: each record linearises the gradient at the run's iterate
+once (about a gradient's work) and then costs ``iterations`` tangent
+products (about a gradient each; twice that for adaptive rules, which also
+track the preconditioned operator), on the full data even when runs take
+minibatch steps. The loop carries one (two for
 adaptive rules) vector of ``n`` per run; a record needs an
 ``(iterations, n)`` Lanczos basis per run while it runs; the records are
 ``runs x (steps / k + 1)`` numbers. ``k``, ``iterations`` and
@@ -233,15 +235,18 @@ def loop_tracker(
 ) -> LoopTracker:
     """The sharpness hooks of the compiled descent loop (no-ops without ``tracking``).
 
-    One Lanczos instance serves every record: its step count is traced
-    (``first_iterations`` for a cold start, ``iterations`` warm), and for
-    adaptive rules the plain and the preconditioned operators run side by
-    side (vmapped), so tracking adds one Hessian-vector product to the
-    program (two when ``every == 1``: iterate 0 is then measured before the
-    loop). Iterate 0 is recorded in the loop's first pass, so a call in which
-    no run takes a step (all converged at their starts) records NaN there.
-    The record predicate depends on the step only, so skipped steps cost
-    nothing.
+    A record is a branch of the loop taken at recorded iterates only (its
+    predicate depends on the step, not on the run, so skipped steps cost
+    nothing). Cold records (a run's first, and for adaptive rules the first
+    preconditioned one) run ``first_iterations`` Lanczos steps, warm ones
+    ``iterations``, each with a basis of exactly that size. Each record
+    linearises the gradient once at the run's iterate (about one gradient's
+    work) and then pays only the tangent part of each Hessian-vector
+    product; for adaptive rules the plain and the preconditioned operators
+    share that linearisation and run side by side (vmapped). Iterate 0 is
+    recorded in the loop's first pass (before the loop when ``every == 1``),
+    so a call in which no run takes a step (all converged at their starts)
+    records NaN there.
     """
     if tracking is None:
 
@@ -262,19 +267,27 @@ def loop_tracker(
     def hvp(theta: jax.Array, v: jax.Array, data: Any) -> jax.Array:
         return jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
 
-    def measure(theta, opt_state, hyper, probes, steps, steps_pre, data):
-        """One run: ``(probes, lambda, lambda_pre)`` warm-started from ``probes``."""
+    def measure(theta, opt_state, hyper, probes, size, data):
+        """One run: ``(probes, lambda, lambda_pre)`` after ``size`` (static) Lanczos steps.
+
+        The basis has exactly ``size`` rows: a warm record pays for ``iterations``
+        steps only (its reorthogonalisation and tridiagonal eigenproblem too), not
+        for the cold start's ``first_iterations``.
+        """
+        # One linearisation of the gradient at ``theta`` serves every Lanczos step
+        # (and both operators of an adaptive rule): each step then pays only the
+        # tangent part of a Hessian-vector product, not the gradient again.
+        _, hv = jax.linearize(lambda t: grad(t, data), theta)
         if not adaptive:
-            lam, v = top_eigenpair(lambda q: hvp(theta, q, data), probes[0], steps, m0)
+            lam, v = top_eigenpair(hv, probes[0], size)
             return (v,), lam, jnp.array(jnp.nan, theta.dtype)
         scale = jax.lax.rsqrt(rule.preconditioner(opt_state, hyper))
         scales = jnp.stack([jnp.ones_like(scale), scale])
-        counts = jnp.stack([jnp.asarray(steps, jnp.int32), jnp.asarray(steps_pre, jnp.int32)])
 
-        def one(s: jax.Array, q0: jax.Array, c: jax.Array) -> tuple[jax.Array, jax.Array]:
-            return top_eigenpair(lambda q: s * hvp(theta, s * q, data), q0, c, m0)
+        def one(s: jax.Array, q0: jax.Array) -> tuple[jax.Array, jax.Array]:
+            return top_eigenpair(lambda q: s * hv(s * q), q0, size)
 
-        lams, vecs = jax.vmap(one)(scales, jnp.stack(probes), counts)
+        lams, vecs = jax.vmap(one)(scales, jnp.stack(probes))
         return (vecs[0], vecs[1]), lams[0], lams[1]
 
     def start(theta: jax.Array, hyper: Any, data: Any) -> tuple[Any, ...]:
@@ -305,14 +318,23 @@ def loop_tracker(
 
             theta = pick(before.theta, after.theta)
             opt_state = jax.tree_util.tree_map(pick, before.opt_state, after.opt_state)
-            steps = jnp.where(first, m0, m)
-            steps_pre = jnp.where(k + 1 == every, m0, m)
-            new, lam, lam_p = batched(
-                lambda th, st, h, p: measure(th, st, h, p, steps, steps_pre, data),
-                theta,
-                opt_state,
-                hyper,
-                probes,
+            # A cold record (a run's first, and for adaptive rules the first
+            # preconditioned one, at iterate ``every``) takes ``first_iterations``
+            # steps; every other record ``iterations``. The predicate depends on
+            # the step only, so this is a branch, not a select over runs.
+            cold = first | (k + 1 == every) if adaptive else first
+
+            def measured(size: int) -> Callable[[Any], tuple[Any, ...]]:
+                def run(args: tuple[Any, ...]) -> tuple[Any, ...]:
+                    th, st, p = args
+                    return batched(
+                        lambda t, s, h, q: measure(t, s, h, q, size, data), th, st, hyper, p
+                    )
+
+                return run
+
+            new, lam, lam_p = jax.lax.cond(
+                cold, measured(m0), measured(m), (theta, opt_state, probes)
             )
             mask = before.running | first
             nan = jnp.array(jnp.nan, lam.dtype)
