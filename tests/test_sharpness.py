@@ -320,6 +320,25 @@ def test_sharpness_figure_draws_each_rates_threshold(quad64):
         sharpness_figure(runs, quantity="preconditioned")
 
 
+def test_sharpness_figure_shows_a_run_that_diverged_before_its_second_record(quad64):
+    from basinview.figures import sharpness_figure
+
+    prob, _, starts = quad64
+    with jax.enable_x64(True):
+        # lr 3 against lambda_max 6: the top mode grows by |1 - 18| = 17 per step
+        # (Source: REFERENCES C1, GD on a quadratic), far past 2 / lr at iterate 0
+        runs = descend(prob, starts, learning_rate=3.0, steps=200, sharpness_every=20)
+    assert (runs.status == "diverged").all() and (runs.stop_step < 20).all()
+    fig = sharpness_figure(runs)
+    curves = [t for t in fig.data if t.line.dash != "dash" and t.mode != "markers"]
+    # one finite record per run: a line alone would draw nothing
+    assert all("markers" in t.mode and np.isfinite(t.y).sum() == 1 for t in curves)
+    crosses = [t for t in fig.data if t.mode == "markers" and t.marker.symbol == "x"]
+    assert len(crosses) == len(runs)
+    assert [c.y[0] for c in crosses] == pytest.approx(runs.sharpness[:, 0].tolist())
+    assert any("diverged run" in a.text for a in fig.layout.annotations)
+
+
 def test_report_places_sharpness_and_density(quad64):
     from basinview.core import Analysis, hessian_density
     from basinview.report import report_html, summary_lines

@@ -125,7 +125,9 @@ def sharpness_figure(
                 "type": "scatter",
                 "x": steps,
                 "y": y,
-                "mode": "lines+markers" if steps.size <= 40 else "lines",
+                # markers too where a run has few records (a run that diverged
+                # before its second record would be an invisible one-point line)
+                "mode": "lines+markers" if np.isfinite(y).sum() <= 40 else "lines",
                 "line": {"color": colour, "width": 2},
                 "marker": {"size": 5, "color": colour},
                 "name": f"{name} ({runs.status[r]})",
@@ -141,6 +143,23 @@ def sharpness_figure(
         finite = y[np.isfinite(y)]
         if finite.size:
             top = max(top, float(finite.max()))
+        if runs.status[r] == "diverged" and finite.size:
+            last = int(np.flatnonzero(np.isfinite(y))[-1])
+            fig.add_trace(
+                {
+                    "type": "scatter",
+                    "x": [float(steps[last])],
+                    "y": [float(y[last])],
+                    "mode": "markers",
+                    "marker": {"symbol": "x", "size": 11, "color": colour},
+                    "showlegend": False,
+                    "hovertemplate": (
+                        f"{name}: last record before it diverged (step "
+                        f"{int(runs.stop_step[r])})<extra></extra>"
+                    ),
+                    "uid": uid("sharpness", "diverged", r),
+                }
+            )
         if threshold is not None and np.isfinite(threshold):
             key = round(float(threshold), 12)
             if key in drawn_lines:
@@ -188,6 +207,11 @@ def sharpness_figure(
         "The threshold is local: a run above it need not diverge.",
         row=1,
     )
+    if (runs.status[shown] == "diverged").any():
+        add_note(fig, "×: a diverged run's last record.", row=2)
+        note_row = 3
+    else:
+        note_row = 2
     if runs.config is not None and runs.config.batch_size is not None:
-        add_note(fig, "Minibatch steps; sharpness is of the full-data loss.", row=2)
+        add_note(fig, "Minibatch steps; sharpness is of the full-data loss.", row=note_row)
     return fig.figure()
