@@ -40,6 +40,7 @@ def loss_curves_figure(
     runs: Runs,
     *,
     minima: Any = None,
+    solutions: Any = None,
     which: Any = None,
     color_by: str = "auto",
     yscale: str = "auto",
@@ -58,7 +59,7 @@ def loss_curves_figure(
 
     Args:
         runs: descent runs.
-        minima, which, color_by, max_paths, max_points, legend_limit: as for
+        minima, solutions, which, color_by, max_paths, max_points, legend_limit: as for
             :func:`~basinview.figures.slice_figure`.
         yscale: ``"auto"`` (logarithmic when every drawn loss is positive,
             else linear, which the axis title says), ``"log"`` (needs
@@ -70,7 +71,8 @@ def loss_curves_figure(
     if yscale not in _YSCALES:
         raise ParameterError(f"yscale must be one of {_YSCALES}; got {yscale!r}.")
     groups, left_out = select_runs(
-        group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+        group_runs(runs, minima=minima, color_by=color_by, which=which, solutions=solutions),
+        max_paths,
     )
     shown = legend_groups(groups, legend_limit)
     drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)

@@ -123,6 +123,7 @@ def slice_figure(
     runs: Runs | None = None,
     *,
     minima: Any = None,
+    solutions: Any = None,
     which: Any = None,
     color_by: str = "auto",
     levels: str = "auto",
@@ -144,8 +145,14 @@ def slice_figure(
         surface: the loss on the plane (:func:`~basinview.core.evaluate_surface`).
         runs: descent runs recorded on ``surface.plane``.
         minima: critical points found from ``runs`` (marked, and used for colours).
+        solutions: groups by connectivity of ``runs``
+            (:func:`~basinview.core.connect_runs`): paths coloured and named by
+            group (``S1``, ``S2``, ...), for runs that end near, not at,
+            critical points.
         which: run indices or a boolean mask of runs to draw (default all).
-        color_by: ``"auto"``, ``"minimum"``, ``"learning_rate"``, ``"start"``, ``"status"``.
+        color_by: ``"auto"``, ``"minimum"``, ``"solution"``, ``"scheme"``,
+            ``"learning_rate"``, ``"start"``, ``"status"`` (see
+            :func:`~basinview.figures.paths.group_runs`).
         levels: ``"auto"`` (log levels when the finite losses span three
             decades or more), ``"linear"`` or ``"log"``.
         max_paths: at most this many paths are drawn; the figure says how many
@@ -173,7 +180,8 @@ def slice_figure(
     if runs is not None:
         check_runs_plane(runs, plane)
         groups, left_out = select_runs(
-            group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+            group_runs(runs, minima=minima, color_by=color_by, which=which, solutions=solutions),
+            max_paths,
         )
         add_paths(fig, runs, groups, bounds, max_points, legend_limit=legend_limit)
         drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
@@ -221,6 +229,7 @@ def relief_figure(
     runs: Runs | None = None,
     *,
     minima: Any = None,
+    solutions: Any = None,
     which: Any = None,
     color_by: str = "auto",
     levels: str = "auto",
@@ -269,7 +278,8 @@ def relief_figure(
     if runs is not None:
         check_runs_plane(runs, plane)
         groups, left_out = select_runs(
-            group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+            group_runs(runs, minima=minima, color_by=color_by, which=which, solutions=solutions),
+            max_paths,
         )
         box = (surface.a[0], surface.a[-1], surface.b[0], surface.b[-1], zlo, zhi * 1.05)
         shown = legend_groups(groups, legend_limit)
