@@ -10,7 +10,6 @@ builders of :mod:`basinview.figures`; numbers in the status line go through
 from __future__ import annotations
 
 import html
-import re
 from typing import Any
 
 import pandas as pd
@@ -18,6 +17,7 @@ import pandas as pd
 from .. import figures
 from ..core import SchemeComparison
 from ..figures.paths import percent
+from ..figures.schemes import solution_order
 from ..figures.text import readable_table, significant
 from .compute import ViewResults
 from .long_work import letters, view_key
@@ -45,11 +45,6 @@ def _share(share: float, low: float, high: float) -> str:
     return f"{percent(share)} ({percent(low)}–{percent(high)})"
 
 
-def _solution_order(name: str) -> tuple[int, int]:
-    """Groups S1, S2, ... in number order first; letters and outcomes after, as given."""
-    return (0, int(name[1:])) if re.fullmatch(r"S\d+", name) else (1, 0)
-
-
 def comparison_table(cmp: SchemeComparison) -> pd.DataFrame:
     """One row per scheme, as the "schemes" view shows it.
 
@@ -63,7 +58,7 @@ def comparison_table(cmp: SchemeComparison) -> pd.DataFrame:
     for name in cmp.schemes:
         mine = shares[shares["scheme"] == name].set_index("solution")
         row: dict[str, object] = {"scheme": name, "runs": int(summary.at[name, "runs"])}
-        for sol in sorted(cmp.solutions, key=_solution_order):
+        for sol in solution_order(cmp):
             row[f"share {sol}"] = _share(*mine.loc[sol, ["share", "share_low", "share_high"]])
         row["median final loss"] = significant(summary.at[name, "median_final_loss"])
         row["median steps to loss"] = significant(summary.at[name, "median_steps_to_loss"])

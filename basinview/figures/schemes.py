@@ -10,6 +10,7 @@ Each scheme keeps its colour (in the order the schemes were given) in both.
 
 from __future__ import annotations
 
+import re
 from typing import Any
 
 import numpy as np
@@ -17,11 +18,12 @@ import pandas as pd
 import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
+from ..core.minima import OUTCOMES
 from ..core.schemes import SchemeComparison
 from .build import FigureSpec
 from .style import add_note, base_layout, category_colour, uid
 
-__all__ = ["scheme_colours", "scheme_shares_figure", "scheme_steps_figure"]
+__all__ = ["scheme_colours", "scheme_shares_figure", "scheme_steps_figure", "solution_order"]
 
 
 def scheme_colours(comparison: SchemeComparison) -> dict[str, str]:
@@ -52,6 +54,30 @@ def _solution_titles(comparison: SchemeComparison) -> dict[str, str]:
     return titles
 
 
+def solution_order(comparison: SchemeComparison) -> list[str]:
+    """The comparison's solutions in the order the scheme figures and tables show them.
+
+    Critical points keep the comparison's order (by loss, then outcomes);
+    groups by connectivity (``S1``, ``S2``, ...) come in number order, then
+    the other labels as given.
+
+    Examples:
+        >>> from types import SimpleNamespace
+        >>> solution_order(SimpleNamespace(minima=None, solutions=("S2", "max_steps", "S1")))
+        ['S1', 'S2', 'max_steps']
+    """
+    names = list(comparison.solutions)
+    if comparison.minima is not None:
+        return names
+    return sorted(names, key=lambda s: (0, int(s[1:])) if re.fullmatch(r"S\d+", s) else (1, 0))
+
+
+def _groups_by_connectivity(names: list[str]) -> bool:
+    return any(re.fullmatch(r"S\d+", s) for s in names) and all(
+        re.fullmatch(r"S\d+", s) or s in OUTCOMES.values() for s in names
+    )
+
+
 def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = None) -> go.Figure:
     """Share of each scheme's runs per solution, with interval whiskers, bars coloured by scheme.
 
@@ -66,7 +92,9 @@ def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = No
         title: figure title.
     """
     cmp = _check(comparison)
+    order = {name: i for i, name in enumerate(solution_order(cmp))}
     shares = cmp.shares
+    shares = shares.iloc[np.argsort(shares["solution"].map(order).to_numpy(), kind="stable")]
     titles = _solution_titles(cmp)
     colours = scheme_colours(cmp)
     fig = FigureSpec()
@@ -118,7 +146,13 @@ def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = No
             legend={"title": {"text": "scheme"}},
         )
     )
-    if cmp.minima is None:
+    if cmp.minima is None and _groups_by_connectivity(list(cmp.solutions)):
+        add_note(
+            fig,
+            "Solutions are groups by connectivity (S1, S2, ...: end points joined by low straight "
+            "segments, names as in every view of this problem) or the runs' outcomes.",
+        )
+    elif cmp.minima is None:
         add_note(fig, "Solutions are the labels the comparison was given.")
     else:
         add_note(
