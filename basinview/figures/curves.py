@@ -9,7 +9,7 @@ import plotly.graph_objects as go
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .overlays import add_legend_summary
 from .paths import (
     OUTCOME_KEYS,
@@ -154,6 +154,7 @@ def loss_curves_figure(
                 "where a diverged run leaves it."
             )
     layout = base_layout(title or "Loss against step", f"{len(runs)} runs of {runs.rule}")
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"]["b"] = 80 + 17 * len(notes)
     layout["showlegend"] = True
     fig.update_layout(layout)

@@ -20,7 +20,7 @@ import plotly.graph_objects as go
 from ..core.errors import ParameterError
 from ..core.minima import OUTCOMES
 from ..core.schemes import SchemeComparison
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .style import add_note, base_layout, category_colour, uid
 
 __all__ = ["scheme_colours", "scheme_shares_figure", "scheme_steps_figure", "solution_order"]
@@ -76,6 +76,14 @@ def _groups_by_connectivity(names: list[str]) -> bool:
     return any(re.fullmatch(r"S\d+", s) for s in names) and all(
         re.fullmatch(r"S\d+", s) or s in OUTCOMES.values() for s in names
     )
+
+
+def _notes(fig: FigureSpec, notes: list[str]) -> None:
+    """Notes under the plot, wrapped so none runs off the figure, with room below for them."""
+    lines = [line for note in notes for line in wrap_lines(note)]
+    fig.update_layout({"margin": {"b": max(100, 64 + 17 * len(lines))}})
+    for row, line in enumerate(lines):
+        add_note(fig, line, row=row)
 
 
 def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = None) -> go.Figure:
@@ -147,19 +155,18 @@ def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = No
         )
     )
     if cmp.minima is None and _groups_by_connectivity(list(cmp.solutions)):
-        add_note(
-            fig,
+        note = (
             "Solutions are groups by connectivity (S1, S2, ...: end points joined by low straight "
-            "segments, names as in every view of this problem) or the runs' outcomes.",
+            "segments, names as in every view of this problem) or the runs' outcomes."
         )
     elif cmp.minima is None:
-        add_note(fig, "Solutions are the labels the comparison was given.")
+        note = "Solutions are the labels the comparison was given."
     else:
-        add_note(
-            fig,
+        note = (
             "Solutions are the critical points the runs reached (letters as in every view of "
-            "this problem) or the runs' outcomes.",
+            "this problem) or the runs' outcomes."
         )
+    _notes(fig, [note])
     return fig.figure()
 
 
@@ -242,6 +249,5 @@ def scheme_steps_figure(
     n_div = int(np.sum(np.asarray(runs.status) == "diverged"))
     if n_div:
         notes.append(f"{n_div} diverged run(s) not shown (see the summary's divergence_rate).")
-    for row, text in enumerate(notes):
-        add_note(fig, text, row=row)
+    _notes(fig, notes)
     return fig.figure()

@@ -16,7 +16,7 @@ import plotly.graph_objects as go
 from ..core.descent import Runs
 from ..core.planes import Plane
 from ..core.surface import Surface
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .levels import Levels, choose_levels
 from .overlays import (
     PATH_HOVER,
@@ -199,6 +199,7 @@ def slice_figure(
         notes.insert(0, caution)
     layout = base_layout(title or "Loss on the slice", _subtitle(surface, runs))
     layout["legend"].update({"orientation": "v", "x": 1.16, "y": 1, "xanchor": "left"})
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"]["b"] = 80 + 17 * len(notes)
     layout["margin"]["r"] = 250 if runs is not None or minima is not None else 40
     fig.update_layout(layout)
@@ -330,6 +331,7 @@ def relief_figure(
         + "Path height is the loss each run recorded; a path off the surface has left the plane.",
     )
     layout = base_layout(title or "Loss relief over the slice")
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"].update({"l": 10, "r": 10, "b": 70 + 17 * len(notes)})
     layout["legend"].update({"x": 0.01, "y": 0.98, "xanchor": "left", "yanchor": "top"})
     layout["showlegend"] = runs is not None
