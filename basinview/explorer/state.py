@@ -242,7 +242,11 @@ def state_from_settings(
     minibatch settings are kept. Starts the controls cannot describe (random
     starts around another centre than the plane origin, several random
     draws, grid starts) are rebuilt from the record as clicked starts, which
-    needs ``problem``. What the Explorer cannot show at all (other plane
+    needs ``problem``. Starts from initialisation schemes give the scheme
+    shown (its name, or ``"all schemes"`` when several were recorded) and the
+    clicked starts; the schemes themselves are the Explorer's
+    (:meth:`Explorer.from_settings <basinview.explorer.Explorer.from_settings>`
+    rebuilds them from the record). What the Explorer cannot show at all (other plane
     kinds, a Hessian plane's solver, initialiser starts) raises
     :class:`ParameterError` naming it; a non-square surface grid warns and
     uses the finer resolution on both axes.
