@@ -6,10 +6,13 @@ computation) live in :mod:`.state` and :mod:`.compute` and import no widgets.
 
 from .compute import ViewComputer, ViewResults
 from .plot import PlotView
+from .schemes import ALL_SCHEMES, GROUPINGS
 from .state import STAGES, ViewState, stages_to_update, state_from_settings
 from .widget import SIDE_VIEWS, Explorer
 
 __all__ = [
+    "ALL_SCHEMES",
+    "GROUPINGS",
     "SIDE_VIEWS",
     "STAGES",
     "Explorer",

@@ -22,9 +22,11 @@ from ..core import (
     Analysis,
     BasinMap,
     Minima,
+    ParameterError,
     Plane,
     Problem,
     Runs,
+    Solutions,
     Starts,
     StepSizeSweep,
     Surface,
@@ -45,6 +47,7 @@ from ..core import (
 )
 from ..core.analysis import record_view
 from ..core.settings import Settings
+from .schemes import group_solutions, scheme_start_set
 from .state import ViewState, stages_to_update
 
 __all__ = ["PREVIEW_AFTER_SECONDS", "ViewComputer", "ViewResults"]
@@ -65,6 +68,8 @@ class ViewResults:
     runs: Runs
     minima: Minima | None
     preview: bool = False
+    #: Solutions grouped by connectivity (when the view's grouping uses them), else None.
+    solutions: Solutions | None = None
 
     @property
     def analysis(self) -> Analysis:
@@ -84,11 +89,17 @@ class ViewComputer:
 
     Attributes:
         problem: the problem.
+        schemes: the initialisation schemes the view may start from (name ->
+            starts, drawn once; see :mod:`basinview.explorer.schemes`).
+        connect_options: keyword arguments of :func:`~basinview.core.connect_runs`
+            when solutions are grouped by connectivity.
         counts: how many times each stage ran (for tests and diagnostics).
         seconds: duration of the last run of each stage.
     """
 
     problem: Problem
+    schemes: dict[str, Starts] = field(default_factory=dict)
+    connect_options: dict[str, Any] = field(default_factory=dict)
     counts: Counter = field(default_factory=Counter)
     seconds: dict[str, float] = field(default_factory=dict)
     _state: ViewState | None = None
@@ -105,7 +116,13 @@ class ViewComputer:
             return None
         r = self._results
         return ViewResults(
-            self._state, r["plane"], r["surface"], r["starts"], r["runs"], r.get("minima")
+            self._state,
+            r["plane"],
+            r["surface"],
+            r["starts"],
+            r["runs"],
+            r.get("minima"),
+            solutions=r.get("solutions"),
         )
 
     def stages_for(self, state: ViewState) -> tuple[str, ...]:
@@ -157,7 +174,7 @@ class ViewComputer:
                 elif stage == "runs":
                     new["runs"] = self._runs(view)
                 else:
-                    new["minima"] = compute_minima(self.problem, new["runs"])
+                    self._minima(state, new)
             self.seconds[stage] = time.perf_counter() - t0
             self.counts[stage] += 1
         self._results = new
@@ -251,7 +268,7 @@ class ViewComputer:
             elif stage == "runs":
                 new["runs"] = self._runs(state.view_spec(new["plane"], new["starts"]))
             else:
-                new["minima"] = compute_minima(self.problem, new["runs"])
+                self._minima(state, new)
             self.seconds[stage] = time.perf_counter() - t0
             self.counts[stage] += 1
         view = state.view_spec(new["plane"], new["starts"])
@@ -281,7 +298,21 @@ class ViewComputer:
             )
         return hessian_plane(self.problem, origin=origin, seed=state.plane_seed)
 
+    def _minima(self, state: ViewState, new: dict[str, Any]) -> None:
+        """Critical points of the runs, and their groups by connectivity if the grouping asks."""
+        new["minima"] = compute_minima(self.problem, new["runs"])
+        new["solutions"] = group_solutions(
+            self.problem, new["runs"], state.grouping, self.connect_options
+        )
+
     def _starts(self, state: ViewState, plane: Plane) -> Starts:
+        if state.scheme:
+            if not self.schemes:
+                raise ParameterError(
+                    f"the view asks for the scheme {state.scheme!r}, but this Explorer was "
+                    "given no schemes; pass schemes={...} to the Explorer."
+                )
+            return scheme_start_set(self.problem, self.schemes, state.scheme, state.start_points)
         parts = []
         if state.n_starts:
             center = (

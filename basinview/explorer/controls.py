@@ -12,6 +12,7 @@ import ipywidgets as w
 import numpy as np
 
 from ..core import RULES, Problem, UpdateRule, get_rule, span_ranges
+from .schemes import ALL_SCHEMES, GROUPINGS
 from .state import PLANE_KINDS, ViewState
 
 __all__ = ["Controls", "hyper_control", "respan", "view_centre"]
@@ -103,8 +104,33 @@ def _half_width(problem: Problem, state: ViewState) -> float:
 class Controls:
     """All Explorer controls, built from a ViewState and read back into one."""
 
-    def __init__(self, problem: Problem, state: ViewState, rule: UpdateRule) -> None:
+    def __init__(
+        self,
+        problem: Problem,
+        state: ViewState,
+        rule: UpdateRule,
+        schemes: tuple[str, ...] = (),
+    ) -> None:
         self._problem = problem
+        self._schemes = tuple(schemes)
+        # The initialisation scheme the runs start from (shown only with schemes=).
+        self.scheme = w.Dropdown(
+            options=[*self._schemes, ALL_SCHEMES] if self._schemes else [ALL_SCHEMES],
+            value=state.scheme or ALL_SCHEMES,
+            description="scheme",
+            tooltip="which initialisation scheme's starts the runs come from",
+            layout=_wide(),
+            style=_STYLE,
+        )
+        self.grouping = w.Dropdown(
+            options=list(GROUPINGS),
+            value=state.grouping,
+            description="solutions by",
+            tooltip="name solutions by critical point (letters), by connectivity (S1, S2...: "
+            "end points joined by low straight segments), or choose from the runs (auto)",
+            layout=_wide(),
+            style=_STYLE,
+        )
         labels = list(problem.labels)
         lr = state.learning_rate
         self.optimizer = w.Dropdown(
@@ -205,7 +231,9 @@ class Controls:
                 self.learning_rate,
                 self.hyper_box,
                 self.steps,
+                self.grouping,
                 w.HTML("<b>starts</b>"),
+                self.scheme,
                 self.n_starts,
                 self.start_scale,
                 self.start_seed,
@@ -228,6 +256,8 @@ class Controls:
             self.optimizer,
             self.learning_rate,
             self.steps,
+            self.grouping,
+            self.scheme,
             self.n_starts,
             self.start_scale,
             self.start_seed,
@@ -262,6 +292,10 @@ class Controls:
         }
         for c in (self.x_label, self.y_label, self.plane_seed, self.normalise):
             c.layout.display = None if c in show[kind] else "none"
+        # With schemes, the runs start from the chosen scheme (and clicks), not a random draw.
+        self.scheme.layout.display = None if self._schemes else "none"
+        for c in (self.n_starts, self.start_scale, self.start_seed):
+            c.layout.display = "none" if self._schemes else None
 
     # ------------------------------------------------------------------ state
     def read(self, base: ViewState) -> ViewState:
@@ -282,6 +316,8 @@ class Controls:
             plane_seed=int(self.plane_seed.value),
             normalise=self.normalise.value,
             resolution=int(self.resolution.value),
+            scheme=self.scheme.value if self._schemes else "",
+            grouping=self.grouping.value,
         )
         # The slider is a half-width around the plane's centre (parameter values on an
         # axes plane); without a move the span follows the centre to a new axis.
@@ -302,8 +338,11 @@ class Controls:
             ("plane_seed", state.plane_seed),
             ("normalise", state.normalise),
             ("resolution", state.resolution),
+            ("grouping", state.grouping),
         ):
             _set(getattr(self, name), value)
+        if self._schemes and state.scheme:
+            self.scheme.value = state.scheme
         if state.x_label:
             self.x_label.value = state.x_label
         if state.y_label:

@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 
 from ..core import MinimaWarning
+from ..figures.text import significant
 from .state import ViewState, stages_to_update
 from .tasks import Cancelled, Progress
 
@@ -225,9 +226,9 @@ class LongWork:
             self._sweep = (state, value)
             self._task_result = value
             self._show_side("step sizes")
-            bound = "none" if value.predicted_bound is None else f"{value.predicted_bound:.4g}"
+            bound = "none" if value.predicted_bound is None else significant(value.predicted_bound)
             observed = value.observed_bound
-            observed = "none" if observed is None else f"{observed:.4g}"
+            observed = "none" if observed is None else significant(observed)
             self._say(
                 f"step sizes: predicted bound {bound}, largest rate without divergence "
                 f"{observed} · {self.describe()}"

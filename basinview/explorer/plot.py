@@ -172,7 +172,9 @@ class PlotView(anywidget.AnyWidget):
             turning (relayout keys such as ``"xaxis.range[0]"``), while the
             ``uirevision`` stays. plotly.js keeps them across updates itself
             (``uirevision``); they are not written into the layout, where they
-            would become the ranges a double click "resets" to.
+            would become the ranges a double click "resets" to. They are part
+            of the widget model, so a view drawn later (a reloaded page, a
+            second display) applies them after its first drawing, as a zoom.
         clicks: how many click messages arrived (for tests and diagnostics).
         bytes_sent: bytes of figure data set on the widget so far (buffers and
             JSON), to measure what each update costs.
@@ -189,10 +191,11 @@ class PlotView(anywidget.AnyWidget):
     height = traitlets.Int(460).tag(sync=True)
     #: How many figures were shown (the front end marks the drawn revision on the page).
     revision = traitlets.Int(0).tag(sync=True)
+    #: The user's zoom and camera for the current ``uirevision`` (see the class docstring).
+    view_ranges = traitlets.Dict().tag(sync=True)
 
     def __init__(self, height: int = 460, **kwargs: Any) -> None:
         super().__init__(height=height, config=dict(PLOT_CONFIG), **kwargs)
-        self.view_ranges: dict[str, Any] = {}
         self.clicks = 0
         self.bytes_sent = 0
         self._uirevision: str | None = None
@@ -215,9 +218,8 @@ class PlotView(anywidget.AnyWidget):
         if "height" in layout:
             self.height = int(layout["height"])
         layout["height"] = self.height
-        if uirevision != self._uirevision:
-            self.view_ranges = {}
-            self._uirevision = uirevision
+        reset = uirevision != self._uirevision
+        self._uirevision = uirevision
         layout["uirevision"] = uirevision
         grids, traces, digests = [], [], []
         for trace in data:
@@ -230,6 +232,8 @@ class PlotView(anywidget.AnyWidget):
                 traces.append(encode(trace))
         layout_data = encode(layout)
         with self.hold_sync():
+            if reset:
+                self.view_ranges = {}  # another slice or span: its own zoom
             if digests != self._grid_digests:
                 self.grids = grids
                 self._grid_digests = digests
@@ -291,7 +295,9 @@ class PlotView(anywidget.AnyWidget):
             for handler in self._click_handlers:
                 handler(float(x), float(y), str(content.get("uid", "")))
         elif kind == "relayout":
-            _keep_ranges(self.view_ranges, content.get("data") or {})
+            kept = dict(self.view_ranges)  # a new dict, so the model (and later views) see it
+            _keep_ranges(kept, content.get("data") or {})
+            self.view_ranges = kept
 
 
 def _keep_ranges(kept: dict[str, Any], data: Mapping[str, Any]) -> None:

@@ -30,7 +30,11 @@ def snapshot_row(i: int, s: Settings) -> dict[str, Any]:
         "plane": s.plane.get("kind"),
         "span": s.span,
         "resolution": s.resolution[0],
-        "starts": s.starts.get("kind"),
+        "starts": (
+            f"schemes {', '.join(str(r['name']) for r in s.schemes)}"
+            if s.schemes
+            else s.starts.get("kind")
+        ),
         "fingerprint": s.fingerprint,
         "note": s.note,
     }

@@ -28,6 +28,7 @@ from ..core import (
     plane_from_spec,
     starts_from_spec,
 )
+from .schemes import GROUPINGS, scheme_fields
 
 __all__ = ["STAGES", "ViewState", "stages_to_update", "state_from_settings"]
 
@@ -47,7 +48,7 @@ _READS: dict[str, tuple[str, ...]] = {
         "origin",
     ),
     "surface": ("span", "resolution"),
-    "starts": ("n_starts", "start_scale", "start_seed", "start_points"),
+    "starts": ("n_starts", "start_scale", "start_seed", "start_points", "scheme"),
     "runs": (
         "optimizer",
         "learning_rate",
@@ -60,7 +61,7 @@ _READS: dict[str, tuple[str, ...]] = {
         "batch_size",
         "batch_seed",
     ),
-    "minima": (),
+    "minima": ("grouping",),
 }
 # Which stages each stage depends on.
 _NEEDS: dict[str, tuple[str, ...]] = {
@@ -101,6 +102,13 @@ class ViewState:
             ``batch_size`` and ``seed`` of :func:`~basinview.core.descend`.
         n_starts, start_scale, start_seed: random starts around the plane origin.
         start_points: extra starts (flat vectors), e.g. from clicks on the map.
+        scheme: the initialisation scheme the runs start from (a name of the
+            Explorer's ``schemes=``, or ``"all schemes"`` side by side); empty
+            without schemes, when the random starts above are used.
+        grouping: how solutions are named: ``"critical points"`` (letters),
+            ``"connectivity"`` (groups ``S1``, ``S2``... joined by low
+            segments) or ``"auto"`` (connectivity when fewer than half of the
+            runs that did not diverge converged).
     """
 
     plane_kind: str = "axes"
@@ -127,6 +135,8 @@ class ViewState:
     start_scale: float = 1.0
     start_seed: int = 0
     start_points: tuple[tuple[float, ...], ...] = ()
+    scheme: str = ""
+    grouping: str = "auto"
 
     def replace(self, **changes: Any) -> ViewState:
         """A copy with ``changes``; ``hyper`` and ``grid`` may be given as dicts.
@@ -200,7 +210,9 @@ class ViewState:
             raise ParameterError(
                 f"the number of random starts must be 0 or more; got {self.n_starts}."
             )
-        if self.n_starts == 0 and not self.start_points:
+        if self.grouping not in GROUPINGS:
+            raise ParameterError(f"grouping must be one of {GROUPINGS}; got {self.grouping!r}.")
+        if self.n_starts == 0 and not self.start_points and not self.scheme:
             raise ParameterError(
                 "there are no starts: set the number of random starts above 0 or click the map."
             )
@@ -230,7 +242,11 @@ def state_from_settings(
     minibatch settings are kept. Starts the controls cannot describe (random
     starts around another centre than the plane origin, several random
     draws, grid starts) are rebuilt from the record as clicked starts, which
-    needs ``problem``. What the Explorer cannot show at all (other plane
+    needs ``problem``. Starts from initialisation schemes give the scheme
+    shown (its name, or ``"all schemes"`` when several were recorded) and the
+    clicked starts; the schemes themselves are the Explorer's
+    (:meth:`Explorer.from_settings <basinview.explorer.Explorer.from_settings>`
+    rebuilds them from the record). What the Explorer cannot show at all (other plane
     kinds, a Hessian plane's solver, initialiser starts) raises
     :class:`ParameterError` naming it; a non-square surface grid warns and
     uses the finer resolution on both axes.
@@ -306,6 +322,8 @@ def _tolerances(settings: Settings, problem: Problem | None) -> dict[str, float 
 
 def _starts_fields(settings: Settings, problem: Problem | None) -> dict[str, Any]:
     spec = settings.starts
+    if spec.get("kind") == "schemes":  # the scheme shown (Explorer.from_settings rebuilds them)
+        return scheme_fields(spec)
     parts = spec["parts"] if spec.get("kind") == "combined" else [spec]
     kinds = [part.get("kind") for part in parts]
     origin = settings.plane.get("origin")

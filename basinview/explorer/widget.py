@@ -26,7 +26,6 @@ import ipywidgets as w
 import pandas as pd
 from IPython.display import display
 
-from .. import figures
 from ..core import (
     BasinviewError,
     MinimaWarning,
@@ -38,19 +37,19 @@ from ..core import (
 )
 from .compute import ViewComputer, ViewResults
 from .controls import Controls, respan
-from .long_work import LongWork, letters, view_key
+from .long_work import LongWork
 from .options import initial_state
 from .plot import PlotView
 from .records import SnapshotLog
+from .schemes import ALL_SCHEMES, resolve_schemes, schemes_from_settings
 from .state import ViewState, state_from_settings
 from .tasks import Worker
+from .views import SCHEMES_VIEW, SIDE_VIEWS, Views
 
 __all__ = ["SIDE_VIEWS", "Explorer"]
 
-SIDE_VIEWS = ("relief", "loss curves", "basins", "step sizes", "runs", "minima")
 
-
-class Explorer(LongWork):
+class Explorer(LongWork, Views):
     """Interactive loss-surface explorer for a :class:`~basinview.core.Problem`.
 
     Args:
@@ -64,7 +63,23 @@ class Explorer(LongWork):
             ``span``, ``resolution``, ``optimizer``, ``learning_rate``,
             ``hyper`` (dict), ``steps``, ``n_starts``, ``start_scale``,
             ``start_seed``, ``starts`` (list of parameter pytrees),
-            ``plane_seed``, ``normalise``, ``origin``.
+            ``plane_seed``, ``normalise``, ``origin``, ``scheme`` (the scheme
+            shown first; default all side by side), ``grouping``
+            (``"auto"``, ``"critical points"`` or ``"connectivity"``).
+        schemes: named initialisation schemes, as
+            :func:`~basinview.core.scheme_starts` and
+            :func:`~basinview.core.compare_schemes` take them (name -> explicit
+            list of starts, a random draw such as ``random_starts(...)``, or an
+            initialiser ``init(key) -> params``). A "scheme" control then chooses
+            whose starts the runs come from (or all side by side, paths coloured
+            by scheme), every run carries its scheme, and the "schemes" side view
+            compares them (:meth:`scheme_comparison`). Clicked starts join as
+            the scheme "clicked starts".
+        init_count, init_seed: draws per initialiser scheme and their seed
+            (``count`` and ``init_seed`` of compare_schemes).
+        connect_options: keyword arguments of :func:`~basinview.core.connect_runs`
+            (``tolerance``, ``symmetries``, ``samples``) used when solutions are
+            grouped by connectivity.
 
     Display it in a notebook cell (``Explorer(problem)`` as the last line).
     Click the contour map to add a start there. ``Record`` stores the
@@ -76,10 +91,24 @@ class Explorer(LongWork):
     """
 
     def __init__(
-        self, problem: Problem, plane: Any = None, *, background: bool = True, **options: Any
+        self,
+        problem: Problem,
+        plane: Any = None,
+        *,
+        background: bool = True,
+        schemes: Any = None,
+        init_count: int | None = None,
+        init_seed: int = 0,
+        connect_options: dict[str, Any] | None = None,
+        **options: Any,
     ) -> None:
         self.problem = problem
-        self.computer = ViewComputer(problem)
+        drawn = resolve_schemes(problem, schemes, count=init_count, seed=init_seed)
+        self.computer = ViewComputer(
+            problem, schemes=drawn, connect_options=dict(connect_options or {})
+        )
+        if drawn:
+            options.setdefault("scheme", ALL_SCHEMES)
         self.log = SnapshotLog()
         self.last_error: str | None = None
         self._basins: tuple[ViewState, Any] | None = None
@@ -90,7 +119,7 @@ class Explorer(LongWork):
         self._task_result: Any = None
         self._task_error: BaseException | None = None
         state = initial_state(problem, plane, dict(options))
-        self.controls = Controls(problem, state, get_rule(state.optimizer))
+        self.controls = Controls(problem, state, get_rule(state.optimizer), tuple(drawn))
         self.status = w.HTML(value="", layout=w.Layout(width="100%"))
         self.status.add_class("bv-status")
         self.progress = w.IntProgress(
@@ -110,7 +139,8 @@ class Explorer(LongWork):
         self.side.add_class("bv-side")
         self.table = w.HTML(layout=w.Layout(display="none", max_height="460px", overflow="auto"))
         self.table.add_class("bv-table")
-        self.view = w.ToggleButtons(options=list(SIDE_VIEWS), value="relief", description="view")
+        views = [*SIDE_VIEWS, SCHEMES_VIEW] if drawn else list(SIDE_VIEWS)
+        self.view = w.ToggleButtons(options=views, value="relief", description="view")
         self.basins_button = w.Button(
             description="map basins", tooltip="run descent from every node of a grid on the slice"
         )
@@ -265,30 +295,6 @@ class Explorer(LongWork):
     def _say(self, message: str) -> None:
         self.status.value = html.escape(message)
 
-    def describe(self, state: ViewState | None = None) -> str:
-        """The settings a status line names: rule, learning rate, steps, starts, slice."""
-        s = state or self.state
-        hyper = "".join(f", {k} {v:.3g}" for k, v in s.hyper)
-        if s.plane_kind == "axes":
-            plane = f"{s.x_label} × {s.y_label}"
-        else:
-            plane = f"{s.plane_kind} plane (seed {s.plane_seed})"
-        return (
-            f"{s.optimizer}, learning rate {s.learning_rate:.3g}{hyper}, {s.steps} steps, {plane}"
-        )
-
-    @staticmethod
-    def describe_starts(state: ViewState) -> str:
-        """Where the runs start: the random draw (count, spread, seed) and clicked starts."""
-        parts = []
-        if state.n_starts:
-            parts.append(
-                f"{state.n_starts} random (spread {state.start_scale:.3g}, seed {state.start_seed})"
-            )
-        if state.start_points:
-            parts.append(f"{len(state.start_points)} clicked")
-        return " + ".join(parts) or "none"
-
     # ------------------------------------------------------------ compute
     def _apply(self, state: ViewState, *, show: bool = False) -> None:
         state.check()
@@ -316,27 +322,6 @@ class Explorer(LongWork):
         self._say(self._summary(results, stages, elapsed, notes))
         if later:
             self._start_surface(state)
-
-    def _summary(
-        self, results: ViewResults, stages: tuple[str, ...], elapsed: float, notes: list[str]
-    ) -> str:
-        runs = results.runs
-        counts = pd.Series(runs.status).value_counts().to_dict()
-        summary = ", ".join(f"{v} {k}" for k, v in counts.items())
-        found = letters(results.minima)
-        if results.minima is None and not notes and not (runs.status == "converged").any():
-            notes = [
-                *notes,
-                "no run converged, so no critical point is marked: run more steps or "
-                "loosen the tolerance",
-            ]
-        coarse = " · coarse preview, computing full resolution…" if results.preview else ""
-        return (
-            f"{self.describe(results.state)} · {len(runs)} runs: {summary}{found}"
-            f" · starts: {self.describe_starts(results.state)} · updated "
-            f"{', '.join(stages) or 'nothing'} in {elapsed:.2f} s{coarse}"
-            + "".join(f" · {n}" for n in notes)
-        )
 
     @staticmethod
     def _pass_on(caught: list[warnings.WarningMessage]) -> list[str]:
@@ -368,63 +353,6 @@ class Explorer(LongWork):
             return
         point = results.plane.lift(float(a), float(b))
         self._apply(self.state.replace(start_points=(*self.state.start_points, tuple(point))))
-
-    # ------------------------------------------------------------ drawing
-    def _draw_main(self, results: ViewResults) -> None:
-        title = "coarse preview" if results.preview else None
-        fig = figures.slice_figure(
-            results.surface, results.runs, minima=results.minima, title=title
-        )
-        self.main.show(fig, uirevision=view_key("map", results.state))
-
-    def _draw_side(self) -> None:
-        results = self.results
-        if results is None:
-            return
-        view = self.view.value
-        if view in ("runs", "minima"):
-            frame = (
-                results.runs.table
-                if view == "runs"
-                else (results.minima.table if results.minima is not None else pd.DataFrame())
-            )
-            self.table.value = frame.head(500).to_html(
-                float_format=lambda x: f"{x:.4g}", index=False, border=0, na_rep=""
-            )
-            self.table.layout.display = None
-            self.side.layout.display = "none"
-            return
-        self.table.layout.display = "none"
-        self.side.layout.display = None
-        if view == "relief":
-            fig = figures.relief_figure(results.surface, results.runs, minima=results.minima)
-        elif view == "loss curves":
-            fig = figures.loss_curves_figure(results.runs, minima=results.minima)
-        elif view == "basins":
-            fig = self._cached_figure(
-                self._basins,
-                figures.basin_figure,
-                "press “map basins” to run descent from a grid of starts",
-            )
-        else:
-            fig = self._cached_figure(
-                self._sweep,
-                figures.step_size_figure,
-                "press “sweep step sizes” to rerun the starts over a range of learning rates",
-            )
-        self.side.show(fig, uirevision=view_key(view, results.state))
-
-    def _cached_figure(self, cached: Any, build: Any, hint: str) -> Any:
-        if cached is None:
-            return {"data": [], "layout": {"title": {"text": hint}, "height": 200}}
-        state, value = cached
-        fig = build(value)
-        if state != self.state:
-            fig.update_layout(
-                title_text=f"{fig.layout.title.text or ''} (computed for earlier settings; "
-                "press again to update)"
-            )
-        return fig
 
     # ------------------------------------------------------------ records
     def record(self, note: str = "") -> Settings:
@@ -458,6 +386,11 @@ class Explorer(LongWork):
         setting), and the tolerances and minibatch settings are kept. What the
         Explorer cannot show raises (or, for a non-square grid, warns); see
         :func:`~basinview.explorer.state.state_from_settings`.
+
+        Settings recorded from initialisation schemes show the recorded scheme
+        (or all side by side) with the recorded schemes offered; pass
+        ``schemes=`` (checked against the record) to offer the others too, and
+        ``initializers={name: function}`` to rebuild initialiser schemes.
         """
         if not isinstance(settings, Settings):
             settings = Settings.load(settings, problem=problem)
@@ -465,6 +398,22 @@ class Explorer(LongWork):
             settings.check(problem)
         settings = upgrade_settings(problem, settings)
         state = state_from_settings(settings, problem=problem)
+        if settings.starts.get("kind") == "schemes":
+            # the recorded schemes (or the caller's, checked against the record)
+            given = options.pop("schemes", None)
+            options["schemes"] = schemes_from_settings(
+                problem,
+                settings.starts,
+                None
+                if given is None
+                else resolve_schemes(
+                    problem,
+                    given,
+                    count=options.pop("init_count", None),
+                    seed=options.pop("init_seed", 0),
+                ),
+                initializers=options.pop("initializers", None),
+            )
         fields = {f: getattr(state, f) for f in state.__dataclass_fields__ if f != "plane_kind"}
         if {"learning_rate", "hyper", "optimizer"} & set(options) and "grid" not in options:
             fields["grid"] = ()  # a rate or rule given here replaces the recorded grid

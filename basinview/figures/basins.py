@@ -11,7 +11,7 @@ from scipy import ndimage
 from ..core.errors import ParameterError
 from ..core.minima import OUTCOMES
 from ..core.surface import Surface
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .levels import choose_levels
 from .overlays import add_critical_points
 from .paths import legend_summary, percent
@@ -242,6 +242,7 @@ def basin_figure(
         sub += f", at most {cfg['steps']} steps"
     layout = base_layout(title or "Basins: where each start ends", sub)
     layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left", "yanchor": "top"})
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"].update({"r": 290, "b": 80 + 17 * len(notes)})
     layout["showlegend"] = True
     fig.update_layout(layout)

@@ -18,7 +18,14 @@ from typing import Any
 
 import plotly.graph_objects as go
 
-__all__ = ["FigureSpec", "deep_merge"]
+__all__ = ["NOTE_WIDTH", "FigureSpec", "deep_merge", "wrap_lines"]
+
+#: Characters per line of a note under a figure. At the notes' 11 px font a
+#: character is at most about 6.6 px wide on average (0.6 em, common practice for
+#: sans-serif text), so a line stays within about 600 px: inside a figure 700 px
+#: wide or more, the narrowest the Explorer's side figure gets at 1000 px (stacked)
+#: or 1400 px with a side panel open.
+NOTE_WIDTH = 90
 
 
 def deep_merge(target: dict[str, Any], update: Mapping[str, Any]) -> dict[str, Any]:
@@ -51,6 +58,30 @@ def _template(ours: Any) -> Any:
     if not isinstance(ours, Mapping):
         return ours
     return deep_merge({}, ours)
+
+
+def wrap_lines(text: str, width: int = NOTE_WIDTH) -> list[str]:
+    """``text`` broken into lines of at most ``width`` characters, at spaces.
+
+    A word longer than ``width`` gets a line of its own (never cut).
+
+    Examples:
+        >>> wrap_lines("the predicted bound comes from one point", 20)
+        ['the predicted bound', 'comes from one point']
+    """
+    if isinstance(width, bool) or not isinstance(width, int) or width < 1:
+        raise ValueError(f"width must be a whole number of at least 1; got {width!r}.")
+    lines: list[str] = []
+    line = ""
+    for word in text.split():
+        if line and len(line) + 1 + len(word) > width:
+            lines.append(line)
+            line = word
+        else:
+            line = f"{line} {word}" if line else word
+    if line:
+        lines.append(line)
+    return lines
 
 
 class FigureSpec:

@@ -9,7 +9,7 @@ import plotly.graph_objects as go
 
 from ..core.descent import Runs
 from ..core.errors import ParameterError
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .overlays import add_legend_summary
 from .paths import (
     OUTCOME_KEYS,
@@ -40,6 +40,7 @@ def loss_curves_figure(
     runs: Runs,
     *,
     minima: Any = None,
+    solutions: Any = None,
     which: Any = None,
     color_by: str = "auto",
     yscale: str = "auto",
@@ -58,7 +59,7 @@ def loss_curves_figure(
 
     Args:
         runs: descent runs.
-        minima, which, color_by, max_paths, max_points, legend_limit: as for
+        minima, solutions, which, color_by, max_paths, max_points, legend_limit: as for
             :func:`~basinview.figures.slice_figure`.
         yscale: ``"auto"`` (logarithmic when every drawn loss is positive,
             else linear, which the axis title says), ``"log"`` (needs
@@ -70,7 +71,8 @@ def loss_curves_figure(
     if yscale not in _YSCALES:
         raise ParameterError(f"yscale must be one of {_YSCALES}; got {yscale!r}.")
     groups, left_out = select_runs(
-        group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+        group_runs(runs, minima=minima, color_by=color_by, which=which, solutions=solutions),
+        max_paths,
     )
     shown = legend_groups(groups, legend_limit)
     drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
@@ -152,6 +154,7 @@ def loss_curves_figure(
                 "where a diverged run leaves it."
             )
     layout = base_layout(title or "Loss against step", f"{len(runs)} runs of {runs.rule}")
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"]["b"] = 80 + 17 * len(notes)
     layout["showlegend"] = True
     fig.update_layout(layout)

@@ -51,7 +51,7 @@ __all__ = [
     "stack_paths",
 ]
 
-COLOR_BY = ("auto", "minimum", "learning_rate", "start", "status")
+COLOR_BY = ("auto", "minimum", "solution", "scheme", "learning_rate", "start", "status")
 
 #: Group keys of runs that reached no critical point (one per outcome label).
 OUTCOME_KEYS = ("max_steps", "not-stationary", "diverged")
@@ -192,7 +192,12 @@ def _fmt(x: float) -> str:
 
 
 def group_runs(
-    runs: Runs, *, minima: Any = None, color_by: str = "auto", which: Any = None
+    runs: Runs,
+    *,
+    minima: Any = None,
+    color_by: str = "auto",
+    which: Any = None,
+    solutions: Any = None,
 ) -> list[PathGroup]:
     """Group runs for drawing (before any cap on their number).
 
@@ -200,16 +205,25 @@ def group_runs(
         runs: the runs.
         minima: optional :class:`~basinview.core.minima.Minima` of these runs;
             its ``assignment`` gives each run's minimum.
-        color_by: ``"minimum"`` (needs ``minima``), ``"learning_rate"``,
-            ``"start"``, ``"status"``, or ``"auto"`` (minimum when ``minima``
-            is given and some drawn run reached one, else learning rate when
-            there are several, else start).
+        color_by: ``"minimum"`` (needs ``minima``), ``"solution"`` (needs
+            ``solutions``: groups by connectivity, named ``S1``, ``S2``, ...),
+            ``"scheme"`` (the runs' initialisation scheme, colours in the
+            order the schemes were given, as in the scheme figures),
+            ``"learning_rate"``, ``"start"``, ``"status"``, or ``"auto"``
+            (solution when ``solutions`` is given, else minimum when
+            ``minima`` is given and some drawn run reached one, else learning
+            rate when there are several, else start).
         which: run indices or a boolean mask of runs to draw (default all).
+        solutions: optional :class:`~basinview.core.Solutions` of these runs
+            (:func:`~basinview.core.connect_runs`); its ``label`` gives each
+            run's group.
     """
     if color_by not in COLOR_BY:
         raise ParameterError(f"color_by must be one of {COLOR_BY}; got {color_by!r}.")
     idx = _candidates(runs, which)
     lrs = runs.hyper.get("learning_rate", np.zeros(len(runs)))
+    if color_by == "auto" and solutions is not None:
+        color_by = "solution"
     if color_by == "auto":
         reached = minima is not None and np.any(np.asarray(minima.assignment)[idx] >= 0)
         if reached:
@@ -220,6 +234,13 @@ def group_runs(
             color_by = "start"
     if color_by == "minimum" and minima is None:
         raise ParameterError("color_by='minimum' needs minima=find_minima(problem, runs).")
+    if color_by == "solution" and solutions is None:
+        raise ParameterError("color_by='solution' needs solutions=connect_runs(problem, runs).")
+    if color_by == "scheme" and runs.scheme is None:
+        raise ParameterError(
+            "color_by='scheme' needs runs from named start sets (descend(problem, "
+            "{'name': starts, ...}) or scheme_starts)."
+        )
     status = np.asarray(runs.status)
     diverged = idx[status[idx] == "diverged"]
     rest = idx[status[idx] != "diverged"]
@@ -269,6 +290,36 @@ def group_runs(
         spent = np.setdiff1d(rest[assignment[rest] == MAX_STEPS_LABEL], diverged)
         add_outcome("max_steps", MAX_STEPS, spent)
         add_outcome("not-stationary", NOT_STATIONARY, unresolved)
+    elif color_by == "solution":
+        label = np.asarray(solutions.label)
+        if label.shape != (len(runs),):
+            raise ParameterError(
+                f"solutions.label has {label.size} entries but there are {len(runs)} runs; "
+                "group the end points of these runs (connect_runs(problem, runs))."
+            )
+        colours = np.asarray(solutions.colour_index)
+        # the registry's order (S1, S2, ...), whatever order this result lists groups in
+        for k in np.argsort(colours, kind="stable"):
+            members = rest[label[rest] == k]
+            name = (
+                f"{solutions.names[k]}: {len(members)} run{'s' if len(members) != 1 else ''}, "
+                f"loss {_fmt(float(solutions.loss_median[k]))}"
+            )
+            add(f"g{int(colours[k])}", name, members, int(colours[k]))
+        diverged = np.union1d(diverged, idx[label[idx] == DIVERGED_LABEL])
+        add_outcome(
+            "max_steps", MAX_STEPS, np.setdiff1d(rest[label[rest] == MAX_STEPS_LABEL], diverged)
+        )
+    elif color_by == "scheme":
+        names = np.asarray(runs.scheme, dtype=object)
+        for k, name in enumerate(dict.fromkeys(names.tolist())):
+            members = rest[names[rest] == name]
+            add(
+                f"sc{k}",
+                f"{name} ({len(members)} run{'s' if len(members) != 1 else ''})",
+                members,
+                k,
+            )
     elif color_by == "learning_rate":
         for k, lr in enumerate(np.unique(lrs[rest])):
             add(

@@ -10,6 +10,7 @@ Each scheme keeps its colour (in the order the schemes were given) in both.
 
 from __future__ import annotations
 
+import re
 from typing import Any
 
 import numpy as np
@@ -17,11 +18,12 @@ import pandas as pd
 import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
+from ..core.minima import OUTCOMES
 from ..core.schemes import SchemeComparison
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .style import add_note, base_layout, category_colour, uid
 
-__all__ = ["scheme_colours", "scheme_shares_figure", "scheme_steps_figure"]
+__all__ = ["scheme_colours", "scheme_shares_figure", "scheme_steps_figure", "solution_order"]
 
 
 def scheme_colours(comparison: SchemeComparison) -> dict[str, str]:
@@ -52,6 +54,38 @@ def _solution_titles(comparison: SchemeComparison) -> dict[str, str]:
     return titles
 
 
+def solution_order(comparison: SchemeComparison) -> list[str]:
+    """The comparison's solutions in the order the scheme figures and tables show them.
+
+    Critical points keep the comparison's order (by loss, then outcomes);
+    groups by connectivity (``S1``, ``S2``, ...) come in number order, then
+    the other labels as given.
+
+    Examples:
+        >>> from types import SimpleNamespace
+        >>> solution_order(SimpleNamespace(minima=None, solutions=("S2", "max_steps", "S1")))
+        ['S1', 'S2', 'max_steps']
+    """
+    names = list(comparison.solutions)
+    if comparison.minima is not None:
+        return names
+    return sorted(names, key=lambda s: (0, int(s[1:])) if re.fullmatch(r"S\d+", s) else (1, 0))
+
+
+def _groups_by_connectivity(names: list[str]) -> bool:
+    return any(re.fullmatch(r"S\d+", s) for s in names) and all(
+        re.fullmatch(r"S\d+", s) or s in OUTCOMES.values() for s in names
+    )
+
+
+def _notes(fig: FigureSpec, notes: list[str]) -> None:
+    """Notes under the plot, wrapped so none runs off the figure, with room below for them."""
+    lines = [line for note in notes for line in wrap_lines(note)]
+    fig.update_layout({"margin": {"b": max(100, 64 + 17 * len(lines))}})
+    for row, line in enumerate(lines):
+        add_note(fig, line, row=row)
+
+
 def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = None) -> go.Figure:
     """Share of each scheme's runs per solution, with interval whiskers, bars coloured by scheme.
 
@@ -66,7 +100,9 @@ def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = No
         title: figure title.
     """
     cmp = _check(comparison)
+    order = {name: i for i, name in enumerate(solution_order(cmp))}
     shares = cmp.shares
+    shares = shares.iloc[np.argsort(shares["solution"].map(order).to_numpy(), kind="stable")]
     titles = _solution_titles(cmp)
     colours = scheme_colours(cmp)
     fig = FigureSpec()
@@ -118,14 +154,19 @@ def scheme_shares_figure(comparison: SchemeComparison, *, title: str | None = No
             legend={"title": {"text": "scheme"}},
         )
     )
-    if cmp.minima is None:
-        add_note(fig, "Solutions are the labels the comparison was given.")
-    else:
-        add_note(
-            fig,
-            "Solutions are the critical points the runs reached (letters as in every view of "
-            "this problem) or the runs' outcomes.",
+    if cmp.minima is None and _groups_by_connectivity(list(cmp.solutions)):
+        note = (
+            "Solutions are groups by connectivity (S1, S2, ...: end points joined by low straight "
+            "segments, names as in every view of this problem) or the runs' outcomes."
         )
+    elif cmp.minima is None:
+        note = "Solutions are the labels the comparison was given."
+    else:
+        note = (
+            "Solutions are the critical points the runs reached (letters as in every view of "
+            "this problem) or the runs' outcomes."
+        )
+    _notes(fig, [note])
     return fig.figure()
 
 
@@ -208,6 +249,5 @@ def scheme_steps_figure(
     n_div = int(np.sum(np.asarray(runs.status) == "diverged"))
     if n_div:
         notes.append(f"{n_div} diverged run(s) not shown (see the summary's divergence_rate).")
-    for row, text in enumerate(notes):
-        add_note(fig, text, row=row)
+    _notes(fig, notes)
     return fig.figure()

@@ -16,7 +16,7 @@ import plotly.graph_objects as go
 from ..core.descent import Runs
 from ..core.planes import Plane
 from ..core.surface import Surface
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .levels import Levels, choose_levels
 from .overlays import (
     PATH_HOVER,
@@ -123,6 +123,7 @@ def slice_figure(
     runs: Runs | None = None,
     *,
     minima: Any = None,
+    solutions: Any = None,
     which: Any = None,
     color_by: str = "auto",
     levels: str = "auto",
@@ -144,8 +145,14 @@ def slice_figure(
         surface: the loss on the plane (:func:`~basinview.core.evaluate_surface`).
         runs: descent runs recorded on ``surface.plane``.
         minima: critical points found from ``runs`` (marked, and used for colours).
+        solutions: groups by connectivity of ``runs``
+            (:func:`~basinview.core.connect_runs`): paths coloured and named by
+            group (``S1``, ``S2``, ...), for runs that end near, not at,
+            critical points.
         which: run indices or a boolean mask of runs to draw (default all).
-        color_by: ``"auto"``, ``"minimum"``, ``"learning_rate"``, ``"start"``, ``"status"``.
+        color_by: ``"auto"``, ``"minimum"``, ``"solution"``, ``"scheme"``,
+            ``"learning_rate"``, ``"start"``, ``"status"`` (see
+            :func:`~basinview.figures.paths.group_runs`).
         levels: ``"auto"`` (log levels when the finite losses span three
             decades or more), ``"linear"`` or ``"log"``.
         max_paths: at most this many paths are drawn; the figure says how many
@@ -173,7 +180,8 @@ def slice_figure(
     if runs is not None:
         check_runs_plane(runs, plane)
         groups, left_out = select_runs(
-            group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+            group_runs(runs, minima=minima, color_by=color_by, which=which, solutions=solutions),
+            max_paths,
         )
         add_paths(fig, runs, groups, bounds, max_points, legend_limit=legend_limit)
         drawn = np.concatenate([g.runs for g in groups]) if groups else np.zeros(0, int)
@@ -191,6 +199,7 @@ def slice_figure(
         notes.insert(0, caution)
     layout = base_layout(title or "Loss on the slice", _subtitle(surface, runs))
     layout["legend"].update({"orientation": "v", "x": 1.16, "y": 1, "xanchor": "left"})
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"]["b"] = 80 + 17 * len(notes)
     layout["margin"]["r"] = 250 if runs is not None or minima is not None else 40
     fig.update_layout(layout)
@@ -221,6 +230,7 @@ def relief_figure(
     runs: Runs | None = None,
     *,
     minima: Any = None,
+    solutions: Any = None,
     which: Any = None,
     color_by: str = "auto",
     levels: str = "auto",
@@ -269,7 +279,8 @@ def relief_figure(
     if runs is not None:
         check_runs_plane(runs, plane)
         groups, left_out = select_runs(
-            group_runs(runs, minima=minima, color_by=color_by, which=which), max_paths
+            group_runs(runs, minima=minima, color_by=color_by, which=which, solutions=solutions),
+            max_paths,
         )
         box = (surface.a[0], surface.a[-1], surface.b[0], surface.b[-1], zlo, zhi * 1.05)
         shown = legend_groups(groups, legend_limit)
@@ -320,6 +331,7 @@ def relief_figure(
         + "Path height is the loss each run recorded; a path off the surface has left the plane.",
     )
     layout = base_layout(title or "Loss relief over the slice")
+    notes = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
     layout["margin"].update({"l": 10, "r": 10, "b": 70 + 17 * len(notes)})
     layout["legend"].update({"x": 0.01, "y": 0.98, "xanchor": "left", "yanchor": "top"})
     layout["showlegend"] = runs is not None

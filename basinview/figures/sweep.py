@@ -15,7 +15,7 @@ import numpy as np
 import plotly.graph_objects as go
 
 from ..core.errors import ParameterError
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .levels import choose_levels
 from .style import DIVERGED, MAX_STEPS, OKABE_ITO, add_note, base_layout, uid
 from .text import readable_header, significant
@@ -193,7 +193,6 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
         else ""
     )
     layout = base_layout(title or "Step size: what each learning rate did", subtitle)
-    layout["margin"]["b"] = 100
     layout["showlegend"] = True
     layout["legend"]["traceorder"] = "grouped"
     fig.update_layout(layout)
@@ -217,13 +216,16 @@ def step_size_figure(sweep: Any, *, y: str = "final_loss", title: str | None = N
     )
     _bounds(fig, sweep)
     missing = int(np.sum(~np.isfinite(values)))
-    note = (
+    lines = wrap_lines(
         "The predicted bound comes from the curvature at one point; elsewhere the loss may be "
         "steeper or flatter."
     )
     if missing:
-        note += f" × at the top: no finite {ylabel} at that rate."
-    add_note(fig, note)
+        lines += wrap_lines(f"× at the top: no finite {ylabel} at that rate.")
+    # Notes are wrapped (build.NOTE_WIDTH characters a line), so none runs off the figure.
+    fig.update_layout({"margin": {"b": 64 + 17 * len(lines)}})
+    for row, line in enumerate(lines):
+        add_note(fig, line, row=row)
     return fig.figure()
 
 

@@ -200,14 +200,22 @@ function render({ model, el }) {
       plot.style.height = layout.height + "px";
       shownRevision = layout.uirevision;
       return Plotly.newPlot(plot, data, layout, model.get("config") || {}).then(() => {
-        root.dataset.revision = String(model.get("revision"));
-        listen();
-        // Follow the container (side panel opened, window resized): plotly.js's own
-        // `responsive` option only follows the window.
-        observer = new ResizeObserver(() => {
-          if (alive && Plotly && plot.offsetWidth > 0) Plotly.Plots.resize(plot);
+        // A view drawn later (a reloaded page, a second display) takes the user's zoom
+        // and camera from the model, as a zoom (a double click still resets the view).
+        const ranges = model.get("view_ranges") || {};
+        const zoomed = Object.keys(ranges).length
+          ? Plotly.relayout(plot, Object.assign({}, ranges))
+          : Promise.resolve();
+        return zoomed.then(() => {
+          root.dataset.revision = String(model.get("revision"));
+          listen();
+          // Follow the container (side panel opened, window resized): plotly.js's own
+          // `responsive` option only follows the window.
+          observer = new ResizeObserver(() => {
+            if (alive && Plotly && plot.offsetWidth > 0) Plotly.Plots.resize(plot);
+          });
+          observer.observe(root);
         });
-        observer.observe(root);
       });
     })
     .catch((err) => {
