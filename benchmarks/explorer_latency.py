@@ -55,7 +55,7 @@ import numpy as np
 from basinview.core import bucket, count_compilations
 
 from .interaction import LATENCY_RATES, QUICKSTART, QUICKSTART_CENTER, path_data
-from .timing import load_average, machine
+from .timing import cpu_seconds, load_average, machine
 
 __all__ = [
     "GOAL_MS",
@@ -190,9 +190,9 @@ def timed_change(
     gc.collect()
     clock.reset()
     with count_compilations() as compiled:
-        t0 = time.perf_counter()
+        cpu0, t0 = cpu_seconds(), time.perf_counter()
         apply()
-        seconds = time.perf_counter() - t0
+        seconds, cpu = time.perf_counter() - t0, cpu_seconds() - cpu0
     if "⚠" in ex.status.value or ex.last_error:
         raise RuntimeError(f"{control} -> {value!r}: the Explorer reported {ex.status.value!r}")
     if path_data(ex.main) == before:
@@ -200,6 +200,7 @@ def timed_change(
     return {
         "change": f"{control} -> {value}",
         "ms": 1e3 * seconds,
+        "cpu_ms": 1e3 * cpu,
         "compilations": compiled.count,
         "compile_seconds": compiled.seconds,
         "runs": len(ex.results.runs),
@@ -218,8 +219,11 @@ def _summary(rows: Sequence[dict[str, Any]]) -> dict[str, Any]:
         "min_ms": min(ms),
         "max_ms": max(ms),
         "iqr_ms": [float(q1), float(q3)],
+        "median_cpu_ms": statistics.median(r["cpu_ms"] for r in rows),
         "compilations": sum(r["compilations"] for r in rows),
         "changes_that_compiled": sum(1 for r in rows if r["compilations"]),
+        "stages_run": sorted({s for r in rows for s in r["stages"]}),
+        "other_min_ms": min(r["breakdown_ms"]["other"] for r in rows),
         "breakdown_median_ms": {
             p: statistics.median(r["breakdown_ms"][p] for r in rows) for p in PARTS
         },
@@ -242,14 +246,21 @@ def learning_rate_changes(ex: Any, clock: StageClock, rounds: int) -> dict[str, 
 
 
 def start_count_changes(
-    ex: Any, clock: StageClock, counts: Sequence[int] = tuple(range(1, 65)), seed: int = 0
+    ex: Any,
+    clock: StageClock,
+    counts: Sequence[int] = tuple(range(1, 65)),
+    seed: int = 0,
+    draw: bool = True,
 ) -> dict[str, Any]:
     """Every count of ``counts`` in a shuffled order, after a warm-up over their buckets.
 
     The warm-up sets the start count to each run-count bucket the counts meet
     (at least the Explorer's padding floor), largest last; then the counts are
     visited in a seeded random order (a count equal to the current one is
-    moved, so every step is a change).
+    moved, so every step is a change). ``draw=False`` (the smoke test) runs the
+    counts through the Explorer's :class:`ViewComputer` only, the stages a
+    change runs without the figures (which cost most of the time and compile
+    nothing).
     """
     floor = int(ex.computer._run_floor)
     clicked = len(ex.state.start_points)
@@ -259,9 +270,13 @@ def start_count_changes(
     order = list(np.random.default_rng(seed).permutation(np.asarray(counts)))
     if order[0] == ex.state.n_starts:
         order.append(order.pop(0))
-    rows = [timed_change(ex, clock, "n_starts", int(n)) for n in order]
+    if draw:
+        rows = [timed_change(ex, clock, "n_starts", int(n)) for n in order]
+    else:
+        rows = [_computed_change(ex, clock, int(n)) for n in order]
     by_count = {r["runs"]: r["compilations"] for r in rows}
     return {
+        "path": "Explorer controls" if draw else "ViewComputer.update (no figures)",
         "run_floor": floor,
         "buckets": buckets,
         "warm_up": [{k: r[k] for k in ("change", "ms", "compilations")} for r in warm],
@@ -270,7 +285,69 @@ def start_count_changes(
         "order": [int(n) for n in order],
         **_summary(rows),
         "compilations_by_runs": {str(k): v for k, v in sorted(by_count.items())},
-        "ms_by_runs": {str(r["runs"]): round(r["ms"], 2) for r in sorted(rows, key=lambda r: r["runs"])},
+        "ms_by_runs": {
+            str(r["runs"]): round(r["ms"], 2) for r in sorted(rows, key=lambda r: r["runs"])
+        },
+    }
+
+
+def _computed_change(ex: Any, clock: StageClock, n: int) -> dict[str, Any]:
+    """The stages of a start-count change, without the figures (see start_count_changes)."""
+    clock.reset()
+    state = ex.computer.state.replace(n_starts=n)
+    with count_compilations() as compiled:
+        cpu0, t0 = cpu_seconds(), time.perf_counter()
+        results, stages = ex.computer.update(state)
+        seconds, cpu = time.perf_counter() - t0, cpu_seconds() - cpu0
+    if len(results.runs) != n + len(state.start_points) or "runs" not in stages:
+        raise RuntimeError(f"n_starts -> {n}: {len(results.runs)} runs after the update")
+    return {
+        "change": f"n_starts -> {n}",
+        "ms": 1e3 * seconds,
+        "cpu_ms": 1e3 * cpu,
+        "compilations": compiled.count,
+        "compile_seconds": compiled.seconds,
+        "runs": len(results.runs),
+        "stages": sorted(ex.computer.seconds),
+        "breakdown_ms": clock.breakdown(seconds),
+    }
+
+
+def figure_costs(ex: Any, repeats: int = 5) -> dict[str, Any]:
+    """Where the figure time goes, on the current view's map (``figures.slice_figure``).
+
+    ``build``: the figure function (plain dicts, then one validated
+    ``go.Figure``); ``validate``: ``go.Figure`` rebuilt from the same figure's
+    JSON (plotly's validation alone); ``to_json``: ``to_plotly_json()``;
+    ``show_figure`` / ``show_dict``: ``PlotView.show`` given the figure or the
+    same figure as plain data (what skipping plotly's objects would cost).
+    """
+    import plotly.graph_objects as go
+
+    from basinview import figures
+    from basinview.explorer.plot import PlotView
+
+    r = ex.results
+    view = PlotView()
+    fig = figures.slice_figure(r.surface, r.runs, minima=r.minima)
+    plain = fig.to_plotly_json()
+
+    def timed(fn: Callable[[], Any]) -> float:
+        times = []
+        for _ in range(repeats):
+            t0 = time.perf_counter()
+            fn()
+            times.append(time.perf_counter() - t0)
+        return 1e3 * statistics.median(times)
+
+    return {
+        "runs": len(r.runs),
+        "traces": len(fig.data),
+        "build_ms": timed(lambda: figures.slice_figure(r.surface, r.runs, minima=r.minima)),
+        "validate_ms": timed(lambda: go.Figure(plain)),
+        "to_json_ms": timed(fig.to_plotly_json),
+        "show_figure_ms": timed(lambda: view.show(fig)),
+        "show_dict_ms": timed(lambda: view.show(plain)),
     }
 
 
@@ -390,7 +467,9 @@ def profile_change(ex: Any, control: str, values: Sequence[Any], top: int = 12) 
     return rows
 
 
-def scenario_record(scenario: str, rounds: int, plane_repeats: int, **overrides: Any) -> dict[str, Any]:
+def scenario_record(
+    scenario: str, rounds: int, plane_repeats: int, draw_counts: bool = True, **overrides: Any
+) -> dict[str, Any]:
     """Build ``scenario``'s Explorer and measure all W8 changes on it."""
     with count_compilations() as built:
         t0 = time.perf_counter()
@@ -417,9 +496,11 @@ def scenario_record(scenario: str, rounds: int, plane_repeats: int, **overrides:
     }
     lr = learning_rate_changes(ex, clock, rounds)
     record["learning_rate_change"] = {k: v for k, v in lr.items() if k != "all"}
-    record["start_count_change"] = start_count_changes(ex, clock)
-    ex.controls.n_starts.value = NETWORK["n_starts"] if scenario != "quickstart" else QUICKSTART["n_starts"]
+    record["start_count_change"] = start_count_changes(ex, clock, draw=draw_counts)
+    n_starts = QUICKSTART["n_starts"] if scenario == "quickstart" else NETWORK["n_starts"]
+    ex.set(n_starts=n_starts)  # back to the view's own count (also redraws after draw=False)
     record["bare_descent"] = bare_descent_ms(ex)
+    record["figure_costs"] = figure_costs(ex)
     record["descent_of_lr_change_median_ms"] = lr["breakdown_median_ms"]["descent"]
     if lr["median_ms"] > GOAL_MS:
         record["profile_learning_rate_change"] = profile_change(
@@ -483,7 +564,9 @@ def latency_record(quick: bool = False, scenarios: Sequence[str] | None = None) 
     for name in names:
         sizes = {"resolution": 11, "steps": 20} if quick else {}
         rounds, repeats = (1, 2) if quick else (5, 8)
-        record["scenarios"][name] = scenario_record(name, rounds, repeats, **sizes)
+        record["scenarios"][name] = scenario_record(
+            name, rounds, repeats, draw_counts=not quick, **sizes
+        )
     info["load_average_at_end"] = load_average()
     record["notes"] = notes(record)
     record["verdict"] = {
@@ -507,8 +590,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     record = latency_record(args.quick, [s for s in args.only.split(",") if s] or None)
     args.out.write_text(json.dumps(record, indent=1, default=float) + "\n", encoding="utf-8")
     for name, v in record["verdict"].items():
-        print(f"{name}: learning-rate change {v['learning_rate_median_ms']:.1f} ms median, "
-              f"{v['start_count_compilations']} compilations over start counts 1-64")
+        print(
+            f"{name}: learning-rate change {v['learning_rate_median_ms']:.1f} ms median, "
+            f"{v['start_count_compilations']} compilations over start counts 1-64"
+        )
     return 0
 
 
