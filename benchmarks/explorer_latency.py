@@ -40,13 +40,9 @@ Run: ``python -m benchmarks.explorer_latency [--quick]``; writes
 from __future__ import annotations
 
 import argparse
-import cProfile
-import gc
 import json
-import pstats
-import statistics
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -54,24 +50,30 @@ import numpy as np
 
 from basinview.core import bucket, count_compilations
 
-from .interaction import LATENCY_RATES, QUICKSTART, QUICKSTART_CENTER, path_data
-from .timing import cpu_seconds, load_average, machine
+from .interaction import LATENCY_RATES, QUICKSTART, QUICKSTART_CENTER
+from .latency_probes import (
+    StageClock,
+    bare_descent_ms,
+    computed_change,
+    figure_costs,
+    profile_change,
+    summary,
+    timed_change,
+)
+from .timing import load_average, machine
 
 __all__ = [
     "GOAL_MS",
     "NETWORK",
     "OUT",
-    "StageClock",
-    "bare_descent_ms",
     "build_explorer",
     "latency_record",
     "learning_rate_changes",
     "main",
+    "notes",
     "plane_changes",
-    "profile_change",
     "scenario_record",
     "start_count_changes",
-    "timed_change",
 ]
 
 OUT = Path(__file__).resolve().parent / "results_explorer_latency.json"
@@ -89,18 +91,6 @@ NETWORK: dict[str, Any] = {
     "n_starts": 8,
     "start_scale": 0.5,
 }
-
-#: Stages in the order a breakdown lists them.
-PARTS = (
-    "plane",
-    "surface",
-    "starts",
-    "descent",
-    "minima",
-    "figure_build",
-    "to_plot_model",
-    "other",
-)
 
 
 def build_explorer(scenario: str, **overrides: Any) -> Any:
@@ -121,128 +111,30 @@ def build_explorer(scenario: str, **overrides: Any) -> Any:
     return basinview.Explorer(problem, plane, background=False, **{**options, **overrides})
 
 
-class StageClock:
-    """Times the figure build and the PlotView serialisation of one Explorer's changes.
-
-    Wraps, on the instance only, the Explorer's two drawing methods and its two
-    views' ``show``; the compute stages come from ``ex.computer.seconds``.
-    """
-
-    def __init__(self, ex: Any) -> None:
-        self.ex = ex
-        self.spent: dict[str, float] = {}
-        for name in ("_draw_main", "_draw_side"):
-            setattr(ex, name, self._wrap(name, getattr(ex, name)))
-        for plot in (ex.main, ex.side):
-            plot.show = self._wrap("show", plot.show)
-
-    def _wrap(self, key: str, fn: Callable[..., Any]) -> Callable[..., Any]:
-        def timed(*args: Any, **kwargs: Any) -> Any:
-            t0 = time.perf_counter()
-            try:
-                return fn(*args, **kwargs)
-            finally:
-                self.spent[key] = self.spent.get(key, 0.0) + time.perf_counter() - t0
-
-        return timed
-
-    def reset(self) -> None:
-        self.spent.clear()
-        self.ex.computer.seconds.clear()
-
-    def breakdown(self, total: float) -> dict[str, float]:
-        """Milliseconds per part of the last change (``total``: its seconds)."""
-        stages = dict(self.ex.computer.seconds)
-        show = self.spent.get("show", 0.0)
-        draw = self.spent.get("_draw_main", 0.0) + self.spent.get("_draw_side", 0.0)
-        parts = {
-            "plane": stages.get("plane", 0.0),
-            "surface": stages.get("surface", 0.0),
-            "starts": stages.get("starts", 0.0),
-            "descent": stages.get("runs", 0.0),
-            "minima": stages.get("minima", 0.0),
-            "figure_build": draw - show,
-            "to_plot_model": show,
-        }
-        parts["other"] = total - sum(parts.values())
-        return {k: 1e3 * v for k, v in parts.items()}
-
-
-def _control(ex: Any, control: str, value: Any) -> Callable[[], None]:
-    widget = getattr(ex.controls, control)
-    return lambda: setattr(widget, "value", value)
-
-
-def timed_change(
-    ex: Any, clock: StageClock, control: str, value: Any, apply: Callable[[], None] | None = None
-) -> dict[str, Any]:
-    """Set control ``control`` to ``value``; its milliseconds, compilations and breakdown.
-
-    ``apply`` replaces the control assignment (e.g. ``ex.set`` for a change
-    of two controls at once).
-
-    Raises:
-        RuntimeError: the Explorer showed an error, or the descent paths of the
-            map did not change (the change did not take effect).
-    """
-    apply = apply or _control(ex, control, value)
-    before = path_data(ex.main)
-    gc.collect()
-    clock.reset()
-    with count_compilations() as compiled:
-        cpu0, t0 = cpu_seconds(), time.perf_counter()
-        apply()
-        seconds, cpu = time.perf_counter() - t0, cpu_seconds() - cpu0
-    if "⚠" in ex.status.value or ex.last_error:
-        raise RuntimeError(f"{control} -> {value!r}: the Explorer reported {ex.status.value!r}")
-    if path_data(ex.main) == before:
-        raise RuntimeError(f"{control} -> {value!r}: the map's descent paths did not change")
-    return {
-        "change": f"{control} -> {value}",
-        "ms": 1e3 * seconds,
-        "cpu_ms": 1e3 * cpu,
-        "compilations": compiled.count,
-        "compile_seconds": compiled.seconds,
-        "runs": len(ex.results.runs),
-        "stages": sorted(ex.computer.seconds),
-        "breakdown_ms": clock.breakdown(seconds),
-    }
-
-
-def _summary(rows: Sequence[dict[str, Any]]) -> dict[str, Any]:
-    """Median and spread over ``rows`` (from :func:`timed_change`)."""
-    ms = [r["ms"] for r in rows]
-    q1, _, q3 = np.percentile(ms, [25, 50, 75]) if len(ms) > 1 else (ms[0], ms[0], ms[0])
-    return {
-        "changes": len(rows),
-        "median_ms": statistics.median(ms),
-        "min_ms": min(ms),
-        "max_ms": max(ms),
-        "iqr_ms": [float(q1), float(q3)],
-        "median_cpu_ms": statistics.median(r["cpu_ms"] for r in rows),
-        "compilations": sum(r["compilations"] for r in rows),
-        "changes_that_compiled": sum(1 for r in rows if r["compilations"]),
-        "stages_run": sorted({s for r in rows for s in r["stages"]}),
-        "other_min_ms": min(r["breakdown_ms"]["other"] for r in rows),
-        "breakdown_median_ms": {
-            p: statistics.median(r["breakdown_ms"][p] for r in rows) for p in PARTS
-        },
-    }
-
-
 def _warm(ex: Any, clock: StageClock, changes: Sequence[tuple[str, Any]]) -> list[dict[str, Any]]:
     return [timed_change(ex, clock, c, v) for c, v in changes]
 
 
-def learning_rate_changes(ex: Any, clock: StageClock, rounds: int) -> dict[str, Any]:
-    """Learning-rate changes cycling through W5's rates, after one warm change."""
-    warm = _warm(ex, clock, [("learning_rate", LATENCY_RATES[0])])
-    rows = [
-        timed_change(ex, clock, "learning_rate", v)
-        for _ in range(rounds)
-        for v in LATENCY_RATES[1:] + LATENCY_RATES[:1]
-    ]
-    return {"warm_up": warm, **_summary(rows), "rates": list(LATENCY_RATES), "all": rows}
+def learning_rate_changes(
+    ex: Any, clock: StageClock, rounds: int, rates: Sequence[float] = LATENCY_RATES
+) -> dict[str, Any]:
+    """Learning-rate changes cycling through ``rates`` (W5's), after one warm pass.
+
+    The warm pass visits every rate once: a rate at which runs converge for the
+    first time compiles the refinement of the minima once (its compilations
+    are reported with the warm-up).
+    """
+    rates = list(rates)
+    warm = _warm(ex, clock, [("learning_rate", v) for v in rates])
+    cycle = rates[1:] + rates[:1]
+    rows = [timed_change(ex, clock, "learning_rate", v) for _ in range(rounds) for v in cycle]
+    return {
+        "warm_up": [{k: r[k] for k in ("change", "ms", "compilations", "stages")} for r in warm],
+        "warm_up_compilations": sum(r["compilations"] for r in warm),
+        **summary(rows),
+        "rates": rates,
+        "all": rows,
+    }
 
 
 def start_count_changes(
@@ -273,7 +165,7 @@ def start_count_changes(
     if draw:
         rows = [timed_change(ex, clock, "n_starts", int(n)) for n in order]
     else:
-        rows = [_computed_change(ex, clock, int(n)) for n in order]
+        rows = [computed_change(ex, clock, int(n)) for n in order]
     by_count = {r["runs"]: r["compilations"] for r in rows}
     return {
         "path": "Explorer controls" if draw else "ViewComputer.update (no figures)",
@@ -283,71 +175,11 @@ def start_count_changes(
         "warm_up_compilations": sum(r["compilations"] for r in warm),
         "warm_up_compile_seconds": sum(r["compile_seconds"] for r in warm),
         "order": [int(n) for n in order],
-        **_summary(rows),
+        **summary(rows),
         "compilations_by_runs": {str(k): v for k, v in sorted(by_count.items())},
         "ms_by_runs": {
             str(r["runs"]): round(r["ms"], 2) for r in sorted(rows, key=lambda r: r["runs"])
         },
-    }
-
-
-def _computed_change(ex: Any, clock: StageClock, n: int) -> dict[str, Any]:
-    """The stages of a start-count change, without the figures (see start_count_changes)."""
-    clock.reset()
-    state = ex.computer.state.replace(n_starts=n)
-    with count_compilations() as compiled:
-        cpu0, t0 = cpu_seconds(), time.perf_counter()
-        results, stages = ex.computer.update(state)
-        seconds, cpu = time.perf_counter() - t0, cpu_seconds() - cpu0
-    if len(results.runs) != n + len(state.start_points) or "runs" not in stages:
-        raise RuntimeError(f"n_starts -> {n}: {len(results.runs)} runs after the update")
-    return {
-        "change": f"n_starts -> {n}",
-        "ms": 1e3 * seconds,
-        "cpu_ms": 1e3 * cpu,
-        "compilations": compiled.count,
-        "compile_seconds": compiled.seconds,
-        "runs": len(results.runs),
-        "stages": sorted(ex.computer.seconds),
-        "breakdown_ms": clock.breakdown(seconds),
-    }
-
-
-def figure_costs(ex: Any, repeats: int = 5) -> dict[str, Any]:
-    """Where the figure time goes, on the current view's map (``figures.slice_figure``).
-
-    ``build``: the figure function (plain dicts, then one validated
-    ``go.Figure``); ``validate``: ``go.Figure`` rebuilt from the same figure's
-    JSON (plotly's validation alone); ``to_json``: ``to_plotly_json()``;
-    ``show_figure`` / ``show_dict``: ``PlotView.show`` given the figure or the
-    same figure as plain data (what skipping plotly's objects would cost).
-    """
-    import plotly.graph_objects as go
-
-    from basinview import figures
-    from basinview.explorer.plot import PlotView
-
-    r = ex.results
-    view = PlotView()
-    fig = figures.slice_figure(r.surface, r.runs, minima=r.minima)
-    plain = fig.to_plotly_json()
-
-    def timed(fn: Callable[[], Any]) -> float:
-        times = []
-        for _ in range(repeats):
-            t0 = time.perf_counter()
-            fn()
-            times.append(time.perf_counter() - t0)
-        return 1e3 * statistics.median(times)
-
-    return {
-        "runs": len(r.runs),
-        "traces": len(fig.data),
-        "build_ms": timed(lambda: figures.slice_figure(r.surface, r.runs, minima=r.minima)),
-        "validate_ms": timed(lambda: go.Figure(plain)),
-        "to_json_ms": timed(fig.to_plotly_json),
-        "show_figure_ms": timed(lambda: view.show(fig)),
-        "show_dict_ms": timed(lambda: view.show(plain)),
     }
 
 
@@ -378,7 +210,7 @@ def plane_changes(ex: Any, clock: StageClock, repeats: int) -> dict[str, Any]:
     seed0 = ex.state.plane_seed
     warm += _warm(ex, clock, [("plane_seed", seed0 + 1)])
     rows = [timed_change(ex, clock, "plane_seed", seed0 + 2 + i) for i in range(repeats)]
-    out["random_plane_new_seed"] = {"warm_up": warm, **_summary(rows)}
+    out["random_plane_new_seed"] = {"warm_up": warm, **summary(rows)}
 
     labels = list(ex.problem.labels)
     warm = _warm(ex, clock, [("plane_kind", "axes")])
@@ -391,10 +223,10 @@ def plane_changes(ex: Any, clock: StageClock, repeats: int) -> dict[str, Any]:
         how = f"x axis moved to another of the {len(labels)} coordinates, y axis {y}"
     else:
         pairs = [(labels[1], labels[0]), (labels[0], labels[1])]
-        warm += [_pair(ex, clock, *pairs[0]), _pair(ex, clock, *pairs[1])]
-        rows = [_pair(ex, clock, *pairs[i % 2]) for i in range(repeats)]
+        warm.append(_pair(ex, clock, *pairs[0]))
+        rows = [_pair(ex, clock, *pairs[(i + 1) % 2]) for i in range(repeats)]
         how = "the two axes swap (x <-> y) in one change, Explorer.set(x_label=, y_label=)"
-    out["axes_plane_new_pair"] = {"warm_up": warm, **_summary(rows), "how": how}
+    out["axes_plane_new_pair"] = {"warm_up": warm, **summary(rows), "how": how}
     return out
 
 
@@ -403,74 +235,12 @@ def _pair(ex: Any, clock: StageClock, x: str, y: str) -> dict[str, Any]:
     return timed_change(ex, clock, "axes", (x, y), lambda: ex.set(x_label=x, y_label=y))
 
 
-def bare_descent_ms(ex: Any, repeats: int = 5) -> dict[str, Any]:
-    """A bare jitted loop doing the Explorer's descent (same starts, rate and steps).
+def scenario_record(scenario: str, quick: bool = False, **overrides: Any) -> dict[str, Any]:
+    """Build ``scenario``'s Explorer and measure all W8 changes on it.
 
-    Gradient descent, ``vmap`` over the runs of a ``lax.scan`` over the steps that
-    keeps only each step's loss: the arithmetic a descent cannot avoid.
+    ``quick`` (the smoke test): few changes of each kind, start counts through
+    the ViewComputer only, no profile; ``overrides`` replace view options.
     """
-    import jax
-    import jax.numpy as jnp
-
-    problem, state = ex.problem, ex.state
-    starts = jnp.asarray(ex.results.starts.points, dtype=problem.dtype)
-    data = problem.data
-    lr = jnp.asarray(state.learning_rate, dtype=problem.dtype)
-    value_and_grad = jax.value_and_grad(problem.flat_loss)
-
-    @jax.jit
-    def run(starts: Any, lr: Any, data: Any) -> Any:
-        def one(theta: Any) -> Any:
-            def step(th: Any, _: Any) -> Any:
-                value, grad = value_and_grad(th, data)
-                return th - lr * grad, value
-
-            return jax.lax.scan(step, theta, None, length=state.steps)
-
-        return jax.vmap(one)(starts)
-
-    jax.block_until_ready(run(starts, lr, data))
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        jax.block_until_ready(run(starts, lr, data))
-        times.append(time.perf_counter() - t0)
-    return {
-        "runs": int(starts.shape[0]),
-        "steps": state.steps,
-        "median_ms": 1e3 * statistics.median(times),
-        "min_ms": 1e3 * min(times),
-    }
-
-
-def profile_change(ex: Any, control: str, values: Sequence[Any], top: int = 12) -> list[str]:
-    """cProfile of ``len(values)`` changes: the heaviest entries by own time, as text."""
-    profiler = cProfile.Profile()
-    setters = [_control(ex, control, v) for v in values]
-    profiler.enable()
-    for apply in setters:
-        apply()
-    profiler.disable()
-    stats = pstats.Stats(profiler)
-    rows = []
-    total = stats.total_tt  # type: ignore[attr-defined]
-    entries = stats.stats  # type: ignore[attr-defined]
-    for (path, line, name), (_, calls, own, cum, _) in sorted(
-        entries.items(), key=lambda kv: -kv[1][2]
-    )[:top]:
-        short = "/".join(Path(path).parts[-2:]) if path != "~" else "builtin"
-        rows.append(
-            f"{1e3 * own / len(values):.1f} ms own, {1e3 * cum / len(values):.1f} ms cumulative "
-            f"per change ({calls // len(values)} calls): {short}:{line} {name}"
-        )
-    rows.append(f"total {1e3 * total / len(values):.1f} ms per change under the profiler")
-    return rows
-
-
-def scenario_record(
-    scenario: str, rounds: int, plane_repeats: int, draw_counts: bool = True, **overrides: Any
-) -> dict[str, Any]:
-    """Build ``scenario``'s Explorer and measure all W8 changes on it."""
     with count_compilations() as built:
         t0 = time.perf_counter()
         ex = build_explorer(scenario, **overrides)
@@ -494,19 +264,20 @@ def scenario_record(
             "compile_seconds": built.seconds,
         },
     }
-    lr = learning_rate_changes(ex, clock, rounds)
+    rates = LATENCY_RATES[:3] if quick else LATENCY_RATES
+    lr = learning_rate_changes(ex, clock, 1 if quick else 5, rates)
     record["learning_rate_change"] = {k: v for k, v in lr.items() if k != "all"}
-    record["start_count_change"] = start_count_changes(ex, clock, draw=draw_counts)
+    record["start_count_change"] = start_count_changes(ex, clock, draw=not quick)
     n_starts = QUICKSTART["n_starts"] if scenario == "quickstart" else NETWORK["n_starts"]
     ex.set(n_starts=n_starts)  # back to the view's own count (also redraws after draw=False)
     record["bare_descent"] = bare_descent_ms(ex)
-    record["figure_costs"] = figure_costs(ex)
+    record["figure_costs"] = figure_costs(ex, repeats=1 if quick else 5)
     record["descent_of_lr_change_median_ms"] = lr["breakdown_median_ms"]["descent"]
-    if lr["median_ms"] > GOAL_MS:
+    if lr["median_ms"] > GOAL_MS and not quick:
         record["profile_learning_rate_change"] = profile_change(
             ex, "learning_rate", LATENCY_RATES[1:5]
         )
-    record["plane_change"] = plane_changes(ex, clock, plane_repeats)
+    record["plane_change"] = plane_changes(ex, clock, 1 if quick else 8)
     return record
 
 
@@ -563,10 +334,7 @@ def latency_record(quick: bool = False, scenarios: Sequence[str] | None = None) 
     }
     for name in names:
         sizes = {"resolution": 11, "steps": 20} if quick else {}
-        rounds, repeats = (1, 2) if quick else (5, 8)
-        record["scenarios"][name] = scenario_record(
-            name, rounds, repeats, draw_counts=not quick, **sizes
-        )
+        record["scenarios"][name] = scenario_record(name, quick, **sizes)
     info["load_average_at_end"] = load_average()
     record["notes"] = notes(record)
     record["verdict"] = {
