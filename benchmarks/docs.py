@@ -47,6 +47,11 @@ def _cases(results: dict[str, Any]) -> list[tuple[str, dict[str, Any]]]:
 _FORMS = ("X @ theta", "theta0 + theta1 * x")
 
 
+def _ms(x: float) -> str:
+    """Milliseconds with 3 significant digits, whole numbers from 100 ms on."""
+    return f"{x:.0f}" if abs(x) >= 100 else f"{x:.3g}"
+
+
 def latency_markdown(record: dict[str, Any]) -> list[str]:
     """The W8 table (Explorer latency, kernel side) from its results record."""
     machine = record["machine"]
@@ -57,10 +62,12 @@ def latency_markdown(record: dict[str, Any]) -> list[str]:
         f"From `benchmarks/results_explorer_latency.json`, run of {machine['date']}; load average "
         f"{machine['load_average_at_start'][0]} at the start, "
         f"{machine['load_average_at_end'][0]} at the end. Medians (min-max) from setting a "
-        "control to both figure models updated; compilations after the warm-up.",
+        "control to both figure models updated (CPU: the process's CPU time, less moved by other "
+        "work on the machine); compilations after the warm-up.",
         "",
-        "| scenario | change | median | min-max | descent | figures | to model | compilations |",
-        "|---|---|---|---|---|---|---|---|",
+        "| scenario | change | median | CPU | min-max | descent | figures | to model "
+        "| compilations |",
+        "|---|---|---|---|---|---|---|---|---|",
     ]
     kinds = (
         ("learning rate", lambda r: r["learning_rate_change"]),
@@ -75,11 +82,12 @@ def latency_markdown(record: dict[str, Any]) -> list[str]:
             cells = [
                 f"{name} ({rec['view']['parameters']} parameters)",
                 kind,
-                _num(row["median_ms"], " ms"),
-                f"{row['min_ms']:.3g}-{row['max_ms']:.3g} ms",
-                _num(parts["descent"], " ms"),
-                _num(parts["figure_build"], " ms"),
-                _num(parts["to_plot_model"], " ms"),
+                f"{_ms(row['median_ms'])} ms",
+                f"{_ms(row['median_cpu_ms'])} ms",
+                f"{_ms(row['min_ms'])}-{_ms(row['max_ms'])} ms",
+                f"{_ms(parts['descent'])} ms",
+                f"{_ms(parts['figure_build'])} ms",
+                f"{_ms(parts['to_plot_model'])} ms",
                 f"{row['compilations']} in {row['changes']}",
             ]
             lines.append("| " + " | ".join(cells) + " |")

@@ -296,11 +296,30 @@ def notes(record: dict[str, Any]) -> list[str]:
         bare = rec["bare_descent"]
         out.append(
             f"{name}: learning-rate change {lr['median_ms']:.1f} ms median "
+            f"({lr['median_cpu_ms']:.1f} ms of CPU time) "
             f"(goal {GOAL_MS:.0f} ms {'met' if lr['median_ms'] < GOAL_MS else 'missed'}); "
             f"largest parts: {_dominant(lr)}; the bare jitted loop for the same "
             f"{bare['runs']} runs x {bare['steps']} steps takes {bare['median_ms']:.1f} ms "
-            f"against the Explorer's descent stage {rec['descent_of_lr_change_median_ms']:.1f} ms."
+            f"({bare['gflops_at_median']:.1f} GFLOP/s by the cost model's count) against the "
+            f"Explorer's descent stage {rec['descent_of_lr_change_median_ms']:.1f} ms."
         )
+        fig = rec["figure_costs"]
+        out.append(
+            f"{name}: the map figure ({fig['traces']} traces) builds in {fig['build_ms']:.1f} ms, "
+            f"of which plotly's validation (go.Figure from the same JSON) {fig['validate_ms']:.1f}"
+            f" ms; PlotView.show takes {fig['show_figure_ms']:.1f} ms given the figure "
+            f"(to_plotly_json alone {fig['to_json_ms']:.1f} ms) and {fig['show_dict_ms']:.1f} ms "
+            "given the same figure as plain data."
+        )
+        profile = rec.get("profile_learning_rate_change")
+        if profile:
+            out.append(f"{name}: cProfile of learning-rate changes, heaviest: {profile[0]}.")
+        first = lr["warm_up"][0]
+        if len(first["stages"]) > 2:
+            out.append(
+                f"{name}: the first learning-rate change after the build reran "
+                f"{', '.join(first['stages'])} ({first['ms']:.0f} ms), not only runs and minima."
+            )
         out.append(
             f"{name}: start counts 1-64 after a warm-up over buckets {sc['buckets']} "
             f"(run floor {sc['run_floor']}): {sc['compilations']} compilations in "
