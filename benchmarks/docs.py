@@ -10,9 +10,11 @@ import math
 from pathlib import Path
 from typing import Any
 
-__all__ = ["RESULTS", "benchmarks_markdown"]
+__all__ = ["LATENCY", "RESULTS", "benchmarks_markdown", "latency_markdown"]
 
 RESULTS = Path(__file__).resolve().parent / "results.json"
+#: W8 (``python -m benchmarks.explorer_latency``); its table is added when the file exists.
+LATENCY = Path(__file__).resolve().parent / "results_explorer_latency.json"
 
 
 def _num(x: Any, unit: str = "", digits: int = 3) -> str:
@@ -45,10 +47,65 @@ def _cases(results: dict[str, Any]) -> list[tuple[str, dict[str, Any]]]:
 _FORMS = ("X @ theta", "theta0 + theta1 * x")
 
 
-def benchmarks_markdown(results: dict[str, Any] | None = None) -> str:
-    """The benchmark tables as Markdown (default: from benchmarks/results.json)."""
+def _ms(x: float) -> str:
+    """Milliseconds with 3 significant digits, whole numbers from 100 ms on."""
+    return f"{x:.0f}" if abs(x) >= 100 else f"{x:.3g}"
+
+
+def latency_markdown(record: dict[str, Any]) -> list[str]:
+    """The W8 table (Explorer latency, kernel side) from its results record."""
+    machine = record["machine"]
+    lines = [
+        "",
+        "## W8, Explorer latency (kernel side)",
+        "",
+        f"From `benchmarks/results_explorer_latency.json`, run of {machine['date']}; load average "
+        f"{machine['load_average_at_start'][0]} at the start, "
+        f"{machine['load_average_at_end'][0]} at the end. Medians (min-max) from setting a "
+        "control to both figure models updated (CPU: the process's CPU time, less moved by other "
+        "work on the machine); compilations after the warm-up.",
+        "",
+        "| scenario | change | median | CPU | min-max | descent | figures | to model "
+        "| compilations |",
+        "|---|---|---|---|---|---|---|---|---|",
+    ]
+    kinds = (
+        ("learning rate", lambda r: r["learning_rate_change"]),
+        ("start count 1-64", lambda r: r["start_count_change"]),
+        ("random plane, new seed", lambda r: r["plane_change"]["random_plane_new_seed"]),
+        ("axes plane, new pair", lambda r: r["plane_change"]["axes_plane_new_pair"]),
+    )
+    for name, rec in record["scenarios"].items():
+        for kind, pick in kinds:
+            row = pick(rec)
+            parts = row["breakdown_median_ms"]
+            cells = [
+                f"{name} ({rec['view']['parameters']} parameters)",
+                kind,
+                f"{_ms(row['median_ms'])} ms",
+                f"{_ms(row['median_cpu_ms'])} ms",
+                f"{_ms(row['min_ms'])}-{_ms(row['max_ms'])} ms",
+                f"{_ms(parts['descent'])} ms",
+                f"{_ms(parts['figure_build'])} ms",
+                f"{_ms(parts['to_plot_model'])} ms",
+                f"{row['compilations']} in {row['changes']}",
+            ]
+            lines.append("| " + " | ".join(cells) + " |")
+    return lines
+
+
+def benchmarks_markdown(
+    results: dict[str, Any] | None = None, latency: dict[str, Any] | None = None
+) -> str:
+    """The benchmark tables as Markdown (default: from benchmarks/results.json).
+
+    ``latency``: the W8 record (default: benchmarks/results_explorer_latency.json
+    when it exists).
+    """
     if results is None:
         results = json.loads(RESULTS.read_text(encoding="utf-8"))
+    if latency is None and LATENCY.exists():
+        latency = json.loads(LATENCY.read_text(encoding="utf-8"))
     machine = results["machine"]
     lines = [
         "# Benchmark results",
@@ -131,4 +188,6 @@ def benchmarks_markdown(results: dict[str, Any] | None = None) -> str:
                 f"| {case['workload']} | {peak:.0f} MiB | {second['added_peak_mib']:.0f} MiB | "
                 f"{first['added_peak_mib']:.0f} MiB |"
             )
+    if latency is not None:
+        lines += latency_markdown(latency)
     return "\n".join(lines) + "\n"
