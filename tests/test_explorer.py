@@ -70,6 +70,15 @@ def test_stage_planning_is_minimal():
     )
 
 
+def test_axis_labels_do_not_dirty_a_random_plane():
+    s = ViewState(plane_kind="random")
+    # the controls fill in the first two labels; a random plane does not read them
+    assert stages_to_update(s, s.replace(x_label="a", y_label="b")) == ()
+    axes = ViewState(plane_kind="axes", x_label="a", y_label="b")
+    assert stages_to_update(axes, axes.replace(x_label="c"))[0] == "plane"
+    assert stages_to_update(s, s.replace(plane_kind="axes", x_label="a"))[0] == "plane"
+
+
 def test_learning_rate_change_reruns_descent_not_the_surface(explorer):
     counts = dict(explorer.computer.counts)
     before = _paths(explorer.main)

@@ -224,8 +224,14 @@ def stages_to_update(old: ViewState | None, new: ViewState) -> tuple[str, ...]:
     if old is None:
         return STAGES
     dirty: set[str] = set()
+    # The axis labels name an axes plane's coordinates; other planes do not read them
+    # (the controls fill them in on a random or Hessian plane: that is no new plane).
+    labels_unread = old.plane_kind != "axes" and new.plane_kind != "axes"
     for stage in STAGES:
-        if any(getattr(old, f) != getattr(new, f) for f in _READS[stage]) or any(
+        fields = _READS[stage]
+        if stage == "plane" and labels_unread:
+            fields = tuple(f for f in fields if f not in ("x_label", "y_label"))
+        if any(getattr(old, f) != getattr(new, f) for f in fields) or any(
             d in dirty for d in _NEEDS[stage]
         ):
             dirty.add(stage)
