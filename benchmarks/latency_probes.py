@@ -16,13 +16,14 @@ import gc
 import pstats
 import statistics
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from basinview.core import count_compilations
+from basinview.core import MinimaWarning, count_compilations
 from basinview.core.cost_model import loss_cost
 
 from .interaction import path_data
@@ -167,7 +168,9 @@ def computed_change(ex: Any, clock: StageClock, n: int) -> dict[str, Any]:
     """The stages of a start-count change, without the figures (see start_count_changes)."""
     clock.reset()
     state = ex.computer.state.replace(n_starts=n)
-    with count_compilations() as compiled:
+    # As in the Explorer, MinimaWarnings are for the status line, not errors here.
+    with count_compilations() as compiled, warnings.catch_warnings():
+        warnings.simplefilter("ignore", MinimaWarning)
         cpu0, t0 = cpu_seconds(), time.perf_counter()
         results, stages = ex.computer.update(state)
         seconds, cpu = time.perf_counter() - t0, cpu_seconds() - cpu0

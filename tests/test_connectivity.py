@@ -109,6 +109,25 @@ def test_names_stay_and_programs_are_reused(ring_problem):
     assert sorted(second.colour_index.tolist()) == [0, 1]
 
 
+def test_a_fixed_call_size_compiles_one_program_for_any_count():
+    # common practice: padding requests to one shape reuses one compiled program
+    prob = core.Problem(wells, jnp.zeros(2))
+    rng = np.random.default_rng(5)
+    pts = np.vstack([[1.0, 0.0] + 0.01 * rng.normal(size=(20, 2)), [[-1.0, 0.0]] * 10])
+    default = connect_runs(prob, pts, tolerance=0.05)
+    fixed = connect_runs(prob, pts, tolerance=0.05, call_size=16)
+    np.testing.assert_array_equal(fixed.label, default.label)
+    np.testing.assert_allclose(fixed.barrier, default.barrier, rtol=1e-6)
+    counts = []
+    for k in (3, 11, 30):  # other end point counts: other pair counts
+        with core.count_compilations() as c:
+            connect_runs(prob, pts[:k] + 1e-4, tolerance=0.05, call_size=16)
+        counts.append(c.count)
+    assert counts == [0, 0, 0]
+    with pytest.raises(ParameterError, match="call_size"):
+        segment_barriers(prob, [[0.0, 0.0]], [[1.0, 0.0]], call_size=0)
+
+
 def test_runs_from_descent_and_outcome_labels():
     prob = core.Problem(wells, jnp.zeros(2))
     starts = np.array([[-2.0, 0.5], [-0.5, -0.3], [0.4, 0.2], [1.8, -0.4], [1e3, 0.0]])

@@ -105,8 +105,11 @@ def default_tolerance(end_loss: np.ndarray, drop: float) -> float:
 class _Pairs:
     """Barriers measured so far between end points (rows) and representatives (columns)."""
 
-    def __init__(self, problem: Any, syms: Symmetries | None, samples: int) -> None:
+    def __init__(
+        self, problem: Any, syms: Symmetries | None, samples: int, call_size: int | None
+    ) -> None:
         self.problem, self.syms, self.samples = problem, syms, samples
+        self.call_size = call_size
         self.value: dict[tuple[int, int], float] = {}
         self.rep_of: dict[int, int] = {}  # end point -> the representative it is
         self.row_of: dict[int, int] = {}  # representative -> the end point it is
@@ -135,7 +138,9 @@ class _Pairs:
         for i, (k, r) in enumerate(todo):
             ends[i] = pts[k] if self.syms is None else self.syms.align(pts[k], reps[r])[0]
         starts = np.stack([reps[r] for _, r in todo])
-        barrier, _, _ = segment_barriers(self.problem, starts, ends, samples=self.samples)
+        barrier, _, _ = segment_barriers(
+            self.problem, starts, ends, samples=self.samples, call_size=self.call_size
+        )
         for pr, b in zip(todo, barrier):
             self.value[pr] = float(b)
 
@@ -152,6 +157,7 @@ def connect_runs(
     samples: int = 17,
     block: int = 128,
     include_unconverged: bool = True,
+    call_size: int | None = None,
 ) -> Solutions:
     """Group end points into solutions joined by low straight segments.
 
@@ -168,6 +174,9 @@ def connect_runs(
         samples: points along each segment (``t = 0`` and ``1`` included).
         block: end points compared with the representatives per batched call.
         include_unconverged: also group runs that spent their step budget.
+        call_size: segments per compiled call (see
+            :func:`~basinview.core.segments.segment_losses`): a fixed size
+            compiles one program for any number of runs (the Explorer uses it).
 
     Warns:
         MinimaWarning: when no two end points are connected (every group has
@@ -193,7 +202,11 @@ def connect_runs(
     pts, loss, code, drop = _inputs(problem, runs, include_unconverged)
     syms = resolve_symmetries(problem, symmetries)
     if loss is None:
-        loss = segment_losses(problem, pts, pts, samples=3)[:, 0] if len(pts) else np.zeros(0)
+        loss = (
+            segment_losses(problem, pts, pts, samples=3, call_size=call_size)[:, 0]
+            if len(pts)
+            else np.zeros(0)
+        )
     finite = np.all(np.isfinite(pts), axis=1) & np.isfinite(loss)
     code = np.where((code == 0) & ~finite, DIVERGED_LABEL, code)
     cand = np.flatnonzero(code == 0)
@@ -215,7 +228,7 @@ def connect_runs(
     reps = [p for p in registry.points]
     rep_gid = list(registry.owners)
     rep_row = [-1] * len(reps)  # the end point each representative is (-1: registered earlier)
-    pairs = _Pairs(problem, syms, samples)
+    pairs = _Pairs(problem, syms, samples, call_size)
     # 1. representatives: each block against the current ones; the rest lead new groups
     for lo in range(0, cand.size, int(block)):
         part = [int(k) for k in cand[lo : lo + int(block)]]

@@ -73,8 +73,15 @@ def _check_samples(samples: Any) -> int:
     return int(samples)
 
 
-def segment_losses(problem: Any, starts: Any, ends: Any, *, samples: int = 17) -> np.ndarray:
+def segment_losses(
+    problem: Any, starts: Any, ends: Any, *, samples: int = 17, call_size: int | None = None
+) -> np.ndarray:
     """``(M, samples)`` loss along each segment ``starts[i] -> ends[i]`` (flat ``(M, n)``).
+
+    ``call_size`` fixes the number of segments per compiled call (requests are
+    padded and split to it), so every request uses one program: for
+    interactive use, where a request of a new size would otherwise compile.
+    None picks the size from the request (at most five programs).
 
     Examples:
         >>> import jax.numpy as jnp
@@ -98,11 +105,21 @@ def segment_losses(problem: Any, starts: Any, ends: Any, *, samples: int = 17) -
     batch = max(1, 2 ** math.floor(math.log2(max(chunk_size_for(problem) / s, 1.0))))
     t = jnp.asarray(np.linspace(0.0, 1.0, s), dtype=problem.dtype)
     data = problem.data
-    call = int(min(max(64 * batch, 256), MAX_PAIRS))
+    if call_size is None:
+        call = int(min(max(64 * batch, 256), MAX_PAIRS))
+    elif isinstance(call_size, bool) or not isinstance(call_size, (int, np.integer)) or not (
+        1 <= call_size <= MAX_PAIRS
+    ):
+        raise ParameterError(
+            f"call_size (segments per compiled call) must be a whole number from 1 to "
+            f"{MAX_PAIRS}, or None to choose from the request; got {call_size!r}."
+        )
+    else:
+        call = int(call_size)
     pending: list[tuple[int, int, Any]] = []
     for lo in range(0, m, call):
         hi = min(lo + call, m)
-        size = SMALL_CALL
+        size = call if call_size is not None else SMALL_CALL
         while size < hi - lo:
             size = min(size * 4, call)
         pp = np.empty((size, n), dtype=problem.dtype)
@@ -120,9 +137,10 @@ def segment_losses(problem: Any, starts: Any, ends: Any, *, samples: int = 17) -
 
 
 def segment_barriers(
-    problem: Any, starts: Any, ends: Any, *, samples: int = 17
+    problem: Any, starts: Any, ends: Any, *, samples: int = 17, call_size: int | None = None
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Barrier on each segment, and the loss at its two ends.
+    """Barrier on each segment, and the loss at its two ends (``call_size``: as in
+    :func:`segment_losses`).
 
     Returns:
         ``(barrier, loss_start, loss_end)``, each ``(M,)``; ``barrier`` is
@@ -136,7 +154,7 @@ def segment_barriers(
         >>> float(b[0]), float(l0[0]), float(l1[0])
         (1.0, 0.0, 0.0)
     """
-    losses = segment_losses(problem, starts, ends, samples=samples)
+    losses = segment_losses(problem, starts, ends, samples=samples, call_size=call_size)
     t = np.linspace(0.0, 1.0, losses.shape[1])
     line = (1 - t)[None, :] * losses[:, :1] + t[None, :] * losses[:, -1:]
     with np.errstate(invalid="ignore"):

@@ -35,6 +35,7 @@ from ..core import (
     scheme_starts,
 )
 from ..core.minima import DIVERGED_LABEL, MAX_STEPS_LABEL
+from ..core.segments import SMALL_CALL
 
 __all__ = [
     "ALL_SCHEMES",
@@ -217,11 +218,14 @@ def group_solutions(
     """:func:`~basinview.core.connect_runs` of ``runs`` when ``grouping`` asks for it, else None.
 
     ``options`` are passed to connect_runs (``tolerance``, ``symmetries``,
-    ``samples``, ``block``).
+    ``samples``, ``block``, ``call_size``: :data:`~basinview.core.segments.SMALL_CALL`
+    segments per call unless given).
     """
     if not uses_connectivity(grouping, runs):
         return None
-    return connect_runs(problem, runs, **dict(options or {}))
+    # One compiled segment program for any number of runs and representatives: a
+    # request of a new size must not compile while the user moves a control.
+    return connect_runs(problem, runs, **{"call_size": SMALL_CALL, **dict(options or {})})
 
 
 def solution_labels(solutions: Any) -> np.ndarray:

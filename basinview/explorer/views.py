@@ -117,16 +117,14 @@ class Views:
         found = letters(results.minima)
         if results.solutions is not None:
             found = solution_names(results.solutions) + found
-        if (
-            results.minima is None
-            and results.solutions is None
-            and not notes
-            and not (runs.status == "converged").any()
-        ):
+        if results.minima is None and not notes and not (runs.status == "converged").any():
+            # Groups by connectivity may still name where the runs stopped; they are
+            # not critical points, and the user should know none was reached.
+            grouped = " (the groups are of where the runs stopped)" if results.solutions else ""
             notes = [
                 *notes,
                 "no run converged, so no critical point is marked: run more steps or "
-                "loosen the tolerance",
+                f"loosen the tolerance{grouped}",
             ]
         coarse = " · coarse preview, computing full resolution…" if results.preview else ""
         return (
