@@ -16,6 +16,9 @@ import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
 
+# Several processes or a full harness run: with the slow tests (`python -m pytest -m slow`).
+pytestmark = pytest.mark.slow
+
 
 @pytest.fixture(scope="module")
 def quick_results(tmp_path_factory):

@@ -320,6 +320,7 @@ def test_report_on_all_zero_weights_falls_back_and_says_so(zero_dir, capsys):
     assert _recorded_plane(page)["normalise"] == "none"
 
 
+@pytest.mark.slow
 def test_report_normalise_and_origin_options(zero_dir, capsys):
     folder, name, _, _ = zero_dir
     for choice in ("filter", "layer"):

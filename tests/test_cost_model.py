@@ -199,6 +199,7 @@ def _session(*args: str) -> dict:
     return json.loads(out.stdout.strip().splitlines()[-1])
 
 
+@pytest.mark.slow
 def test_recorded_sizes_give_bit_identical_results_in_a_new_session(tmp_path):
     path = str(tmp_path / "view.json")
     recorded = _session("record", path)

@@ -19,6 +19,7 @@ from __future__ import annotations
 import jax
 import jax.numpy as jnp
 import numpy as np
+import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -117,14 +118,7 @@ def quadratic_case(draw):
     return a, b, starts
 
 
-@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
-@given(
-    case=quadratic_case(),
-    rule=st.sampled_from(sorted(REFERENCE)),
-    lr_scale=st.floats(0.05, 0.9),
-    momentum=st.floats(0.0, 0.95),
-)
-def test_batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum):
+def _batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum):
     a, b, starts = case
     steps = 25
     lam_max = np.linalg.eigvalsh(a)[-1]
@@ -156,6 +150,29 @@ def test_batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum):
             )
         else:
             assert runs.preconditioner is None
+
+
+@settings(max_examples=10, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    case=quadratic_case(),
+    rule=st.sampled_from(sorted(REFERENCE)),
+    lr_scale=st.floats(0.05, 0.9),
+    momentum=st.floats(0.0, 0.95),
+)
+def test_batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum):
+    _batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum)
+
+
+@pytest.mark.slow
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    case=quadratic_case(),
+    rule=st.sampled_from(sorted(REFERENCE)),
+    lr_scale=st.floats(0.05, 0.9),
+    momentum=st.floats(0.0, 0.95),
+)
+def test_batched_runs_equal_numpy_loops_many_examples(case, rule, lr_scale, momentum):
+    _batched_runs_equal_numpy_loops(case, rule, lr_scale, momentum)
 
 
 def test_sequential_differs_from_simultaneous_only_when_coordinates_couple(x64):

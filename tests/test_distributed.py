@@ -25,6 +25,9 @@ import basinview.core as bv
 from basinview.core.cluster import Cluster, cluster_from_env, unit_share
 from basinview.core.results import results_header
 
+# Several processes or a full harness run: with the slow tests (`python -m pytest -m slow`).
+pytestmark = pytest.mark.slow
+
 ROOT = Path(__file__).resolve().parents[1]
 
 LOSS_MODULE = """

@@ -19,6 +19,9 @@ import pytest
 from benchmarks.docs import latency_markdown
 from benchmarks.explorer_latency import latency_record
 
+# Several processes or a full harness run: with the slow tests (`python -m pytest -m slow`).
+pytestmark = pytest.mark.slow
+
 
 @pytest.fixture(scope="module")
 def record():

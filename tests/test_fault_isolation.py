@@ -419,6 +419,7 @@ def _run_property(dtype, max_examples):
     return ledger
 
 
+@pytest.mark.slow
 def test_mixed_batches_equal_a_numpy_reference_step_by_step(x64):
     ledger = _run_property(np.float64, max_examples=12)
     assert ledger["examples"] == 12

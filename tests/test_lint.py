@@ -208,6 +208,7 @@ def test_integer_data_beyond_float32_digits():
     assert findings(trend, {"a": 0.0, "b": 0.0}, ids - 2**25, target)[1] == []
 
 
+@pytest.mark.slow
 def test_the_projects_own_scenarios_and_test_losses_lint_clean():
     from basinview import scenarios
 

@@ -119,6 +119,7 @@ print("ok")
 """
 
 
+@pytest.mark.slow
 def test_four_devices_give_the_numbers_of_one():
     assert _run(SHARDED, FOUR_DEVICES).strip().endswith("ok")
 
