@@ -58,7 +58,7 @@ def _same(a, b):
             np.testing.assert_array_equal(x, y, err_msg=name)  # NaN equal to NaN
 
 
-SIZES = {"descent_runs_per_call": 16, "descent_group": 8}  # rungs 16 and 8: two programs
+SIZES = {"descent_runs_per_call": 32, "descent_group": 8}  # rungs 32 and 16: two programs
 RATES = [0.02, 0.3, 2.0, 40.0]
 CASES = {
     "gd with sharpness": dict(learning_rate=RATES, sharpness_every=7),
@@ -102,7 +102,7 @@ def test_frozen_runs_keep_their_records(fit, starts):
 
 def test_many_calls_pack_into_fewer_at_the_default_width(fit, starts):
     """Default sizes (descent_group 0): calls keep their size, live runs are packed."""
-    sizes = {"descent_runs_per_call": 16, "descent_group": 0}
+    sizes = {"descent_runs_per_call": 8, "descent_group": 0}
     kw = dict(learning_rate=RATES, steps=150, sizes=sizes)
     packed = descend(fit, starts, compact=True, **kw)
     whole = descend(fit, starts, compact=False, **kw)
@@ -114,8 +114,8 @@ def test_no_recompilation_after_warm_up_across_live_counts(fit, starts):
     kw = dict(steps=150, sizes=SIZES, compact=True)
     with count_compilations() as warm:
         descend(fit, starts, learning_rate=RATES, **kw)
-        descend(fit, starts[:3], learning_rate=[0.3, 40.0], **kw)  # one call, shrinks to 8
-    assert warm.count <= 2  # at most one program per rung (16, 8)
+        descend(fit, starts[:4], learning_rate=[0.3, 40.0], **kw)  # one call, shrinks to 16
+    assert warm.count <= 2  # at most one program per rung (32, 16)
     with count_compilations() as counter:
         live = []
         for lrs in ([0.05, 0.2, 1.0, 30.0], [0.01, 0.5, 3.0, 50.0], [0.3, 0.31, 0.02, 0.04]):

@@ -19,7 +19,7 @@ the default sizes (``descent_group`` 0: a call's runs vectorised all at
 once) calls therefore never shrink: the live runs of many calls are packed
 into fewer full calls. ``compact=True`` on a sweep without recorded sizes
 vectorises in groups of an eighth of a call (:func:`compaction_group`,
-recorded in ``runs.config.sizes``), so a call can shrink to one group.
+recorded in ``runs.config.sizes``), so a call can shrink to two groups.
 
 Each run's arithmetic is the same as in the whole-budget loop
 (:mod:`basinview.core.descent_program` builds both from one run's step, at
@@ -111,6 +111,8 @@ def compaction_group(per_device: int) -> int:
     A run's float rounding depends on how many runs XLA vectorises together,
     so compacted calls must keep that width: smaller calls then run whole
     groups (``lax.map`` over ``vmap``'d groups), bit for bit as in the full call.
+    A call never shrinks below two groups: a map over one group is no loop
+    for XLA, and it fuses (and rounds) the step differently (measured).
     """
     return per_device // 8 if per_device >= 16 and per_device % 8 == 0 else 0
 

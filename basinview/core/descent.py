@@ -283,7 +283,7 @@ def descend(
         devs = devs[:1]  # one call's worth of runs: splitting it would change its shapes
     steps_b = bucket(config.steps, minimum=8)
     length = segment_length(steps_b, config.sharpness)
-    floor = min(per_device, bucket(config.min_runs))
+    floor = min(per_device, max(bucket(config.min_runs), 2 * chosen.group))
     ladder = size_ladder(per_device, chosen.group or per_device, floor)
     capacity = -(-n_runs // (per_device * len(devs))) * per_device * len(devs)
     segmented = config.compact
