@@ -138,8 +138,9 @@ def run_all(quick: bool = False, repeats: int = 3) -> dict[str, Any]:
     kw = dict(learning_rate=0.2, steps=400, plane=plane)
     results["demo_basin_map"] = {
         "resolution": res,
-        **_contenders(sc.problem, grid.points, kw, {"compact=False": False, "compact=True": True},
-                      repeats),  # fmt: skip
+        **_contenders(
+            sc.problem, grid.points, kw, {"compact=False": False, "compact=True": True}, repeats
+        ),
     }
     results["load_average_at_end"] = load_average()
     return results

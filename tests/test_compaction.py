@@ -25,9 +25,7 @@ EXTRA = ("sharpness", "preconditioned_sharpness", "preconditioner")
 def _rows(seed: int = 0):
     rng = np.random.default_rng(seed)
     x = rng.standard_normal((48, 3)).astype(np.float32)
-    y = (np.tanh(x @ np.array([1.0, -2.0, 0.5])) + 0.1 * rng.standard_normal(48)).astype(
-        np.float32
-    )
+    y = (np.tanh(x @ np.array([1.0, -2.0, 0.5])) + 0.1 * rng.standard_normal(48)).astype(np.float32)
     return x, y
 
 
@@ -158,7 +156,9 @@ def test_gradient_descent_matches_a_numpy_loop(x64):
             i += 1
 
 
-@settings(max_examples=4, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(
+    max_examples=4, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(scale=st.floats(0.2, 3.0), shift=st.floats(-1.0, 1.0))
 def test_any_starts_give_the_whole_budget_results(fit, starts, scale, shift):
     st_ = (starts * scale + shift).astype(np.float32)

@@ -125,7 +125,7 @@ def compaction_pays(
     ``capacity`` is the runs of all calls (padding included), ``share`` the
     fraction of the data a step reads.
     """
-    if steps <= length or len(ladder) < 2 and capacity <= ladder[0]:
+    if steps <= length or (len(ladder) < 2 and capacity <= ladder[0]):
         return False
     flops = loss_cost(problem, gradient=True).flops * share
     return bool(capacity * steps * flops >= COMPACT_MIN_FLOPS)
@@ -150,7 +150,10 @@ class _Call:
 def _spread(count: int, parts: int, size: int) -> np.ndarray:
     """Slots for ``count`` runs over ``parts`` devices of ``size`` each, evenly spread."""
     return np.concatenate(
-        [d * size + np.arange(len(g)) for d, g in enumerate(np.array_split(np.arange(count), parts))]
+        [
+            d * size + np.arange(len(g))
+            for d, g in enumerate(np.array_split(np.arange(count), parts))
+        ]
     )
 
 

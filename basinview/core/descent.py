@@ -298,8 +298,8 @@ def descend(
                 descend_in_segments(
                     problem, rule, _rule_key(rule), devs, placed, per_device, length, ladder,
                     config, theta_all, hyper_rows, start_index, progress,
-                )  # fmt: skip
-            ]
+                )
+            ]  # fmt: skip
         else:
             fn = problem.compiled(
                 (
@@ -350,7 +350,9 @@ def _sizes(
     if config.sizes is not None:
         return config.sizes
     steps_b = bucket(config.steps, minimum=8)
-    sizes = descent_sizes(problem, max(n_runs, config.min_runs), steps_b, _data_share(problem, config))
+    sizes = descent_sizes(
+        problem, max(n_runs, config.min_runs), steps_b, _data_share(problem, config)
+    )
     if config.tune and sizes.runs_per_call > 1:
         first = theta_all[np.arange(sizes.runs_per_call) % n_runs]
         group = _tuned_group(problem, config.batch_size, first, devs[0])

@@ -28,11 +28,11 @@ __all__ = [
     "RunState",
     "Segment",
     "blank_segment_inputs",
-    "segment_state_shapes",
     "build_program",
     "build_segment_program",
     "run_functions",
     "run_keys",
+    "segment_state_shapes",
 ]
 
 CODE_RUNNING, CODE_CONVERGED, CODE_DIVERGED = 0, 1, 2  # index into STATUSES
@@ -226,7 +226,7 @@ def build_program(
     ``tracking.every`` steps (see :mod:`basinview.core.sharpness`).
     """
     fns = run_functions(flat_loss, rule, n_runs, batch, group)
-    run_start, run_step, batched = fns
+    run_start, _run_step, batched = fns
 
     def program(theta0, hyper, active, sh: Shared, start_index, data):
         keys = run_keys(sh.seed, start_index)
@@ -362,8 +362,10 @@ def build_segment_program(
         body = _loop_body(fns, tracker, hyper, keys, sh, data, first_step, first_step // every)
         init = LoopState(first_step, runs1, records, probes1)
         end = jax.lax.while_loop(_until(jnp.minimum(first_step + length, sh.max_steps)), body, init)
-        pre = () if rule.preconditioner is None else jax.vmap(rule.preconditioner)(
-            end.runs.opt_state, hyper
+        pre = (
+            ()
+            if rule.preconditioner is None
+            else jax.vmap(rule.preconditioner)(end.runs.opt_state, hyper)
         )
         return Segment(end.runs, end.probes, end.records, end.step[None], pre)
 
