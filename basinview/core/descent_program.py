@@ -370,7 +370,8 @@ def build_segment_program(
         return Segment(end.runs, end.probes, end.records, end.step[None], pre)
 
     in_batch = (0, 0, 0, 0, 0, None, None, None)
-    out_batch = Segment(0, 0, 1, 0, () if rule.preconditioner is None else 0)
+    # runs, probes, records (time-major), loop ends, preconditioner
+    out_batch: Any = Segment._make([0, 0, 1, 0, () if rule.preconditioner is None else 0])
     return shard_batch(program, devices, in_batch, out_batch)
 
 
