@@ -22,6 +22,13 @@ import jax.numpy as jnp
 import numpy as np
 
 from ._tuning import fastest, pipelined, progress_counter
+from .compaction import (
+    compaction_group,
+    compaction_pays,
+    descend_in_segments,
+    segment_length,
+    size_ladder,
+)
 from .cost_model import DescentSizes, bucket, descent_sizes, evaluation_bytes
 from .descent_config import MAX_STEPS, DescentConfig, default_tolerances, descent_config
 from .descent_program import Shared, build_program
@@ -154,6 +161,7 @@ def descend(
     sizes: Mapping[str, int] | None = None,
     sharpness_every: int = 0,
     sharpness_iterations: int = 2,
+    compact: bool | None = None,
 ) -> Runs:
     """Run an update rule from many starts and hyper-parameter settings at once.
 
@@ -212,6 +220,12 @@ def descend(
             ``Runs.sharpness`` and ``Runs.sharpness_table``.
         sharpness_iterations: warm-started Lanczos steps (Hessian-vector
             products) per record (static).
+        compact: run the step budget in segments and, between them, gather
+            the runs still running into smaller calls, so that runs that
+            stopped cost nothing more (see :mod:`basinview.core.compaction`).
+            ``None``: where the cost model says it pays (long, large
+            sweeps); ``True``/``False``: always / never. Results are the
+            same either way; each smaller call size compiles once.
 
     Returns:
         :class:`Runs`, with ``.table`` as a pandas DataFrame.
@@ -243,6 +257,7 @@ def descend(
         sizes=sizes,
         sharpness_every=sharpness_every,
         sharpness_iterations=sharpness_iterations,
+        compact=compact,
     )
     if plane is None:
         plane = default_plane(problem)
@@ -260,39 +275,68 @@ def descend(
     theta_all = start_set.points[start_index].astype(problem.dtype)
 
     chosen = _sizes(problem, config, n_runs, theta_all, devs)
-    config = config.with_sizes(chosen)
     per_device = chosen.runs_per_call
+    if config.compact and config.sizes is None and not config.tune and not chosen.group:
+        chosen = chosen._replace(group=compaction_group(per_device))  # calls may shrink
+    config = config.with_sizes(chosen)
     if n_runs <= per_device:
         devs = devs[:1]  # one call's worth of runs: splitting it would change its shapes
     steps_b = bucket(config.steps, minimum=8)
-    fn = problem.compiled(
-        (
-            "descent",
-            _rule_key(rule),
-            per_device,
-            steps_b,
-            config.batch_size,
-            config.sharpness,
-            devs,
-            chosen.group,
-        ),
-        lambda: build_program(
-            problem.flat_loss,
-            rule,
-            per_device,
-            steps_b,
-            config.batch_size,
-            devs,
-            chosen.group,
-            config.sharpness,
-        ),
-    )
+    length = segment_length(steps_b, config.sharpness)
+    floor = min(per_device, max(bucket(config.min_runs), 2 * chosen.group))
+    ladder = size_ladder(per_device, chosen.group or per_device, floor)
+    capacity = -(-n_runs // (per_device * len(devs))) * per_device * len(devs)
+    segmented = config.compact
+    if segmented is None:
+        segmented = compaction_pays(
+            problem, capacity, config.steps, length, ladder, _data_share(problem, config)
+        )
     with loss_runtime_errors(problem, "descent runs"):
-        outs = _run_calls(
-            problem, fn, devs, per_device, config, projection, theta_all, hyper_rows, start_index,
-            progress,
-        )  # fmt: skip
-    return _assemble(rule, config, start_set, plane, hyper_rows, start_index, outs)
+        if segmented:
+            placed = _placement(problem, devs, config, projection)
+            outs = [
+                descend_in_segments(
+                    problem, rule, _rule_key(rule), devs, placed, per_device, length, ladder,
+                    config, theta_all, hyper_rows, start_index, progress,
+                )
+            ]  # fmt: skip
+        else:
+            fn = problem.compiled(
+                (
+                    "descent",
+                    _rule_key(rule),
+                    per_device,
+                    steps_b,
+                    config.batch_size,
+                    config.sharpness,
+                    devs,
+                    chosen.group,
+                ),
+                lambda: build_program(
+                    problem.flat_loss,
+                    rule,
+                    per_device,
+                    steps_b,
+                    config.batch_size,
+                    devs,
+                    chosen.group,
+                    config.sharpness,
+                ),
+            )
+            outs = _run_calls(
+                problem, fn, devs, per_device, config, projection, theta_all, hyper_rows,
+                start_index, progress,
+            )  # fmt: skip
+    return _assemble(
+        rule, config, start_set, plane, hyper_rows, start_index, outs, run_major=segmented
+    )
+
+
+def _data_share(problem: Problem, config: DescentConfig) -> float:
+    """The fraction of the data rows one step reads (minibatches)."""
+    if config.batch_size is None:
+        return 1.0
+    return config.batch_size / jax.tree_util.tree_leaves(problem.data)[0].shape[0]
 
 
 def _sizes(
@@ -306,15 +350,45 @@ def _sizes(
     if config.sizes is not None:
         return config.sizes
     steps_b = bucket(config.steps, minimum=8)
-    share = 1.0
-    if config.batch_size is not None:
-        share = config.batch_size / jax.tree_util.tree_leaves(problem.data)[0].shape[0]
-    sizes = descent_sizes(problem, max(n_runs, config.min_runs), steps_b, share)
+    sizes = descent_sizes(
+        problem, max(n_runs, config.min_runs), steps_b, _data_share(problem, config)
+    )
     if config.tune and sizes.runs_per_call > 1:
         first = theta_all[np.arange(sizes.runs_per_call) % n_runs]
         group = _tuned_group(problem, config.batch_size, first, devs[0])
         sizes = sizes._replace(group=group)
     return sizes
+
+
+def _placement(
+    problem: Problem,
+    devs: tuple[Any, ...],
+    config: DescentConfig,
+    projection: tuple[np.ndarray, np.ndarray, np.ndarray],
+) -> tuple[Any, Any, Any]:
+    """Where a call's runs go, and the shared arguments and data put on the devices."""
+    if len(devs) == 1:
+        whole: Any = devs[0]
+        shared_on: Any = devs[0]
+    else:
+        whole, shared_on = replicated(devs), split(devs)
+    data = problem.cached(("data-on", devs), lambda: jax.device_put(problem.data, whole))
+    tols = tuple(
+        np.asarray(x, problem.dtype)
+        for x in (config.grad_tol, config.loss_tol, config.divergence_factor)
+    )
+    shared = jax.device_put(
+        Shared(
+            max_steps=np.asarray(config.steps, np.int32),
+            tols=tols,
+            origin=projection[0],
+            proj=projection[1],
+            dirs=projection[2],
+            seed=np.uint32(config.seed),
+        ),
+        whole,
+    )
+    return shared_on, shared, data
 
 
 def _run_calls(
@@ -331,26 +405,7 @@ def _run_calls(
 ) -> list[tuple[Any, ...]]:
     """Run the sweep call by call (one call queued ahead), each trimmed to its real runs."""
     dtype = problem.dtype
-    if len(devs) == 1:
-        whole: Any = devs[0]
-        shared_on: Any = devs[0]
-    else:
-        whole, shared_on = replicated(devs), split(devs)
-    data = problem.cached(("data-on", devs), lambda: jax.device_put(problem.data, whole))
-    tols = tuple(
-        np.asarray(x, dtype) for x in (config.grad_tol, config.loss_tol, config.divergence_factor)
-    )
-    shared = jax.device_put(
-        Shared(
-            max_steps=np.asarray(config.steps, np.int32),
-            tols=tols,
-            origin=projection[0],
-            proj=projection[1],
-            dirs=projection[2],
-            seed=np.uint32(config.seed),
-        ),
-        whole,
-    )
+    shared_on, shared, data = _placement(problem, devs, config, projection)
     n_runs = theta_all.shape[0]
     per_call = per_device * len(devs)
     n_calls = -(-n_runs // per_call)
@@ -386,12 +441,20 @@ def _assemble(
     hyper_rows: dict[str, np.ndarray],
     start_index: np.ndarray,
     outs: list[tuple[Any, ...]],
+    run_major: bool = False,
 ) -> Runs:
-    """The :class:`Runs` of a finished sweep: every call's rows joined, trimmed to the budget."""
+    """The :class:`Runs` of a finished sweep: every call's rows joined, trimmed to the budget.
+
+    ``outs`` holds each call's ``(final, status, stop, records[, preconditioner])``
+    with time-major records, or (``run_major``) one block for all runs.
+    """
     final = np.concatenate([o[0] for o in outs])
     status_code = np.concatenate([o[1] for o in outs])
     stop = np.concatenate([o[2] for o in outs]).astype(np.int64)
-    rec = {k: np.concatenate([o[3][k] for o in outs], axis=1).T for k in outs[0][3]}
+    if run_major:  # one block of records, (runs, T + 1) already
+        rec = dict(outs[0][3])
+    else:
+        rec = {k: np.concatenate([o[3][k] for o in outs], axis=1).T for k in outs[0][3]}
     precond = np.concatenate([o[4] for o in outs]) if len(outs[0]) > 4 else None
     steps = config.steps
     t1 = steps + 1

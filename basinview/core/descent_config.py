@@ -61,6 +61,10 @@ class DescentConfig:
         sizes: the program sizes the call ran with (None until it ran, or the
             recorded sizes to reuse).
         sharpness: how sharpness is tracked along the runs (None: not tracked).
+        compact: run the budget in segments and gather the live runs into
+            smaller calls between them (None: where the cost model says it
+            pays; see :mod:`basinview.core.compaction`). Results do not
+            depend on it, so it is not part of :meth:`record`.
     """
 
     optimizer: str
@@ -75,6 +79,7 @@ class DescentConfig:
     tune: bool = False
     sizes: DescentSizes | None = field(default=None)
     sharpness: SharpnessTracking | None = None
+    compact: bool | None = None
 
     @property
     def learning_rate(self) -> tuple[float, ...]:
@@ -186,6 +191,7 @@ def descent_config(
     sizes: Any = None,
     sharpness_every: Any = 0,
     sharpness_iterations: Any = 2,
+    compact: Any = None,
 ) -> DescentConfig:
     """Validate the arguments of :func:`~basinview.core.descend` into a :class:`DescentConfig`.
 
@@ -217,6 +223,10 @@ def descent_config(
         )
     if not isinstance(tune, (bool, np.bool_)):
         raise ParameterError(f"tune must be True or False; got {tune!r}.")
+    if compact is not None and not isinstance(compact, (bool, np.bool_)):
+        raise ParameterError(
+            f"compact must be True, False or None (decide by the cost model); got {compact!r}."
+        )
     return DescentConfig(
         optimizer=rule.name,
         hyper=values,
@@ -230,4 +240,5 @@ def descent_config(
         tune=bool(tune),
         sizes=DescentSizes.from_record(sizes) if sizes is not None else None,
         sharpness=sharpness_tracking(sharpness_every, sharpness_iterations, steps=steps),
+        compact=None if compact is None else bool(compact),
     )

@@ -15,12 +15,25 @@ from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from .optimizers import Oracle, UpdateRule
 from .sharding import shard_batch
 from .sharpness import SharpnessTracking, loop_tracker
 
-__all__ = ["LoopState", "Records", "RunState", "build_program"]
+__all__ = [
+    "LoopState",
+    "Records",
+    "RunFunctions",
+    "RunState",
+    "Segment",
+    "blank_segment_inputs",
+    "build_program",
+    "build_segment_program",
+    "run_functions",
+    "run_keys",
+    "segment_state_shapes",
+]
 
 CODE_RUNNING, CODE_CONVERGED, CODE_DIVERGED = 0, 1, 2  # index into STATUSES
 
@@ -84,24 +97,26 @@ class Shared(NamedTuple):
     seed: Any
 
 
-def build_program(
+class RunFunctions(NamedTuple):
+    """The per-run pieces of the loop, written for ONE run (see :func:`run_functions`)."""
+
+    run_start: Callable[..., Any]
+    run_step: Callable[..., Any]
+    batched: Callable[..., Any]
+
+
+def run_functions(
     flat_loss: Callable[..., jax.Array],
     rule: UpdateRule,
     n_runs: int,
-    n_steps: int,
     batch: int | None,
-    devices: tuple[Any, ...],
     group: int = 0,
-    tracking: SharpnessTracking | None = None,
-) -> Any:
-    """Compile-once function running ``n_runs`` runs per device for up to ``n_steps`` steps.
+) -> RunFunctions:
+    """One run's start and step, and how a batch of ``n_runs`` is vectorised.
 
-    The function takes ``(theta0, hyper, active, shared, start_index, data)``
-    and returns ``(final theta, status codes, stop steps, Records[,
-    preconditioner])``. Runs are vectorised ``group`` at a time (0: all).
-    With several devices each device runs its share in its own loop.
-    With ``tracking``, the loop also records the sharpness every
-    ``tracking.every`` steps (see :mod:`basinview.core.sharpness`).
+    Shared by the whole-budget program (:func:`build_program`) and the
+    segment program (:func:`build_segment_program`), so both compute the very
+    same arithmetic per run.
     """
     vg = jax.value_and_grad(flat_loss)
 
@@ -182,52 +197,48 @@ def build_program(
         )
         return new, row
 
+    return RunFunctions(run_start, run_step, batched)
+
+
+def run_keys(seed: jax.Array, start_index: jax.Array) -> jax.Array:
+    """The minibatch key of each run: its start's, so runs from one start see one stream."""
+    base = jax.random.key(seed)
+    return jax.vmap(lambda i: jax.random.fold_in(base, i))(start_index)
+
+
+def build_program(
+    flat_loss: Callable[..., jax.Array],
+    rule: UpdateRule,
+    n_runs: int,
+    n_steps: int,
+    batch: int | None,
+    devices: tuple[Any, ...],
+    group: int = 0,
+    tracking: SharpnessTracking | None = None,
+) -> Any:
+    """Compile-once function running ``n_runs`` runs per device for up to ``n_steps`` steps.
+
+    The function takes ``(theta0, hyper, active, shared, start_index, data)``
+    and returns ``(final theta, status codes, stop steps, Records[,
+    preconditioner])``. Runs are vectorised ``group`` at a time (0: all).
+    With several devices each device runs its share in its own loop.
+    With ``tracking``, the loop also records the sharpness every
+    ``tracking.every`` steps (see :mod:`basinview.core.sharpness`).
+    """
+    fns = run_functions(flat_loss, rule, n_runs, batch, group)
+    run_start, _run_step, batched = fns
+
     def program(theta0, hyper, active, sh: Shared, start_index, data):
-        base = jax.random.key(sh.seed)
-        keys = jax.vmap(lambda i: jax.random.fold_in(base, i))(start_index)
+        keys = run_keys(sh.seed, start_index)
         runs0, row0 = batched(
             lambda t, h, a, key: run_start(t, h, a, key, sh, data), theta0, hyper, active, keys
         )
-
-        def series(first: jax.Array, length: int) -> jax.Array:
-            return jnp.full((length, n_runs), jnp.nan, first.dtype).at[0].set(first)
-
         tracker = loop_tracker(flat_loss, rule, tracking, batched, n_runs, n_steps)
         probes, sharp0, pre0 = tracker.start(runs0.theta, hyper, data)
-        records = Records._make(
-            [
-                *(series(x, n_steps + 1) for x in row0[:5]),
-                jnp.full((n_steps, n_runs), jnp.nan, theta0.dtype),  # cosine
-                sharp0,
-                pre0,
-            ]
-        )
+        records = _records(row0, n_runs, n_steps, sharp0, pre0)
         init = LoopState(jnp.int32(0), runs0, records, probes)
-
-        def cond(ls: LoopState) -> jax.Array:
-            return (ls.step < sh.max_steps) & jnp.any(ls.runs.running)
-
-        def body(ls: LoopState) -> LoopState:
-            k = ls.step
-            runs, row = batched(
-                lambda rs, h, key: run_step(rs, h, key, k, sh, data), ls.runs, hyper, keys
-            )
-            rec = ls.records
-            records = Records._make(
-                [
-                    *(r.at[k + 1].set(x) for r, x in zip(rec[:5], row[:5])),
-                    rec.cosine.at[k].set(row.cosine),
-                    rec.sharpness,
-                    rec.pre_sharpness,
-                ]
-            )
-            probes, sharp, pre = tracker.step(
-                k, ls.runs, runs, hyper, ls.probes, rec.sharpness, rec.pre_sharpness, data
-            )
-            records = records._replace(sharpness=sharp, pre_sharpness=pre)
-            return LoopState(k + 1, runs, records, probes)
-
-        end = jax.lax.while_loop(cond, body, init)
+        body = _loop_body(fns, tracker, hyper, keys, sh, data, 0, 0)
+        end = jax.lax.while_loop(_until(sh.max_steps), body, init)
         runs = end.runs
         stop = jnp.where(runs.running, end.step, runs.stop)
         out = (runs.theta, runs.status, stop, end.records)
@@ -239,3 +250,160 @@ def build_program(
     in_batch = (0, 0, 0, None, 0, None)
     out_batch = (0, 0, 0, 1) if rule.preconditioner is None else (0, 0, 0, 1, 0)
     return shard_batch(program, devices, in_batch, out_batch)
+
+
+def _records(row0: Row, n_runs: int, length: int, sharp0: Any, pre0: Any) -> Records:
+    """Record buffers of ``length`` steps: NaN, with ``row0`` as row 0."""
+
+    def series(first: jax.Array) -> jax.Array:
+        return jnp.full((length + 1, n_runs), jnp.nan, first.dtype).at[0].set(first)
+
+    cosine = jnp.full((length, n_runs), jnp.nan, row0.loss.dtype)
+    return Records._make([*(series(x) for x in row0[:5]), cosine, sharp0, pre0])
+
+
+def _until(end: jax.Array) -> Callable[[LoopState], jax.Array]:
+    def cond(ls: LoopState) -> jax.Array:
+        return (ls.step < end) & jnp.any(ls.runs.running)
+
+    return cond
+
+
+def _loop_body(
+    fns: RunFunctions, tracker: Any, hyper: Any, keys: Any, sh: Shared, data: Any,
+    first_step: Any, first_record: Any,
+) -> Callable[[LoopState], LoopState]:  # fmt: skip
+    """One step of every run, recorded at row ``k + 1 - first_step`` of the buffers
+    (the sharpness at record ``j - first_record``)."""
+
+    def body(ls: LoopState) -> LoopState:
+        k = ls.step
+        runs, row = fns.batched(
+            lambda rs, h, key: fns.run_step(rs, h, key, k, sh, data), ls.runs, hyper, keys
+        )
+        rec = ls.records
+        i = k - first_step
+        records = Records._make(
+            [
+                *(r.at[i + 1].set(x) for r, x in zip(rec[:5], row[:5])),
+                rec.cosine.at[i].set(row.cosine),
+                rec.sharpness,
+                rec.pre_sharpness,
+            ]
+        )
+        probes, sharp, pre = tracker.step(
+            k, ls.runs, runs, hyper, ls.probes, rec.sharpness, rec.pre_sharpness, data,
+            offset=first_record,
+        )  # fmt: skip
+        records = records._replace(sharpness=sharp, pre_sharpness=pre)
+        return LoopState(k + 1, runs, records, probes)
+
+    return body
+
+
+class Segment(NamedTuple):
+    """What a segment program returns (batched over its runs)."""
+
+    runs: RunState
+    probes: Any
+    records: Records  # rows: iterates first_step .. first_step + length
+    end: jax.Array  # (devices,) the step each device's loop stopped at
+    preconditioner: Any  # (runs, n), or () for rules without one
+
+
+def build_segment_program(
+    flat_loss: Callable[..., jax.Array],
+    rule: UpdateRule,
+    n_runs: int,
+    length: int,
+    batch: int | None,
+    devices: tuple[Any, ...],
+    group: int = 0,
+    tracking: SharpnessTracking | None = None,
+) -> Any:
+    """Compile-once function stepping ``n_runs`` runs per device by at most ``length`` steps.
+
+    The function takes ``(runs, probes, hyper, active, start_index, first_step,
+    shared, data)`` and returns a :class:`Segment`: the runs after steps
+    ``first_step .. first_step + length - 1`` (or fewer: the budget or every
+    run stopped), with their records in buffers of ``length + 1`` rows (row
+    ``i``: iterate ``first_step + i``). With ``first_step == 0`` the runs
+    start from ``runs.theta`` (``active`` marks the real ones; the rest of
+    ``runs`` and ``probes`` are ignored, see :func:`blank_segment_inputs`).
+    Each run's arithmetic is that of :func:`build_program`'s loop, so a run
+    gives the same numbers whichever runs share its segment. ``length`` must
+    be a multiple of ``tracking.every``.
+    """
+    fns = run_functions(flat_loss, rule, n_runs, batch, group)
+    every = tracking.every if tracking is not None else 1
+    if length % every:
+        raise ValueError(f"segment length {length} is not a multiple of {every}")
+
+    def program(runs, probes, hyper, active, start_index, first_step, sh: Shared, data):
+        keys = run_keys(sh.seed, start_index)
+        tracker = loop_tracker(flat_loss, rule, tracking, fns.batched, n_runs, length)
+        dtype = runs.theta.dtype
+        n_rec = length // every + 1
+
+        def fresh(_: Any) -> tuple[Any, ...]:
+            runs0, row0 = fns.batched(
+                lambda t, h, a, key: fns.run_start(t, h, a, key, sh, data),
+                runs.theta, hyper, active, keys,
+            )  # fmt: skip
+            probes0, sharp0, pre0 = tracker.start(runs0.theta, hyper, data)
+            return runs0, probes0, _records(row0, n_runs, length, sharp0, pre0)
+
+        def resume(_: Any) -> tuple[Any, ...]:
+            nan = jnp.full((n_rec if tracking is not None else 0, n_runs), jnp.nan, dtype)
+            row = Row(*(jnp.full((n_runs,), jnp.nan, dtype) for _ in Row._fields))
+            return runs, probes, _records(row, n_runs, length, nan, nan)
+
+        runs1, probes1, records = jax.lax.cond(first_step == 0, fresh, resume, None)
+        body = _loop_body(fns, tracker, hyper, keys, sh, data, first_step, first_step // every)
+        init = LoopState(first_step, runs1, records, probes1)
+        end = jax.lax.while_loop(_until(jnp.minimum(first_step + length, sh.max_steps)), body, init)
+        pre = (
+            ()
+            if rule.preconditioner is None
+            else jax.vmap(rule.preconditioner)(end.runs.opt_state, hyper)
+        )
+        return Segment(end.runs, end.probes, end.records, end.step[None], pre)
+
+    in_batch = (0, 0, 0, 0, 0, None, None, None)
+    # runs, probes, records (time-major), loop ends, preconditioner
+    out_batch: Any = Segment._make([0, 0, 1, 0, () if rule.preconditioner is None else 0])
+    return shard_batch(program, devices, in_batch, out_batch)
+
+
+def segment_state_shapes(
+    flat_loss: Callable[..., jax.Array],
+    rule: UpdateRule,
+    batch: int | None,
+    args: tuple[Any, ...],
+) -> RunState:
+    """Shapes and dtypes of ONE run's :class:`RunState` (no run axis).
+
+    ``args`` are ``(theta0, hyper, active, start_index, shared, data)`` of one
+    run (arrays or shape structs); its start is traced, not compiled or run.
+    """
+
+    def start(theta0, hyper, active, start_index, sh, data):
+        fns = run_functions(flat_loss, rule, 1, batch)
+        key = run_keys(sh.seed, start_index[None])[0]
+        return fns.run_start(theta0, hyper, active, key, sh, data)[0]
+
+    return jax.eval_shape(start, *args)
+
+
+def blank_segment_inputs(
+    shapes: RunState, theta0: np.ndarray, rule: UpdateRule, tracking: SharpnessTracking | None
+) -> tuple[RunState, Any]:
+    """``(runs, probes)`` for a first segment: ``theta0`` (``(runs, n)``) and zeros of
+    the shapes the program carries (one run's: :func:`segment_state_shapes`); a first
+    segment reads only ``theta``."""
+    n_runs = theta0.shape[0]
+    runs = jax.tree_util.tree_map(lambda x: np.zeros((n_runs, *x.shape), x.dtype), shapes)
+    runs = runs._replace(theta=np.asarray(theta0))
+    adaptive = rule.preconditioner is not None
+    probes = () if tracking is None else tuple(np.zeros_like(theta0) for _ in range(1 + adaptive))
+    return runs, probes

@@ -217,8 +217,10 @@ class LoopTracker(NamedTuple):
 
     ``start(theta, hyper, data) -> (probes, sharpness, preconditioned)`` before
     the loop; ``step(k, before, after, hyper, probes, sharpness,
-    preconditioned, data)`` after step ``k`` of the loop (``before`` and
-    ``after``: the batched run states around it).
+    preconditioned, data, offset=0)`` after step ``k`` of the loop (``before``
+    and ``after``: the batched run states around it). ``offset`` is the record
+    index held in row 0 of ``sharpness`` (a segment of the loop writes its own
+    rows, see :mod:`basinview.core.compaction`).
     """
 
     start: Callable[..., Any]
@@ -254,7 +256,7 @@ def loop_tracker(
             empty = jnp.full((0, n_runs), jnp.nan, theta.dtype)
             return (), empty, empty
 
-        def step_off(k, before, after, hyper, probes, sharp, pre, data):
+        def step_off(k, before, after, hyper, probes, sharp, pre, data, offset=0):
             return probes, sharp, pre
 
         return LoopTracker(start_off, step_off)
@@ -306,7 +308,7 @@ def loop_tracker(
             sharp = sharp.at[0].set(lam)
         return probes, sharp, jnp.full((n_rec, n_runs), jnp.nan, theta.dtype)
 
-    def step(k, before, after, hyper, probes, sharp, pre, data):
+    def step(k, before, after, hyper, probes, sharp, pre, data, offset=0):
         first = (k == 0) if first_in_loop else jnp.array(False)
         due = ((k + 1) % every == 0) | first
 
@@ -341,7 +343,7 @@ def loop_tracker(
             kept = [jnp.where(mask[:, None], new[0], probes[0])]
             if adaptive:  # no preconditioner at iterate 0: keep the cold start vector
                 kept.append(jnp.where((mask & ~first)[:, None], new[1], probes[1]))
-            j = jnp.where(first, 0, (k + 1) // every)
+            j = jnp.where(first, 0, (k + 1) // every) - offset
             return (
                 tuple(kept),
                 sharp.at[j].set(jnp.where(mask, lam, nan)),
