@@ -67,7 +67,14 @@ CASES = {
 }
 
 
-@pytest.mark.parametrize("kw", CASES.values(), ids=list(CASES))
+# GD with sharpness runs by default; the Adam and minibatch cases with the slow tests.
+@pytest.mark.parametrize(
+    "kw",
+    [
+        pytest.param(kw, id=name, marks=() if name == "gd with sharpness" else pytest.mark.slow)
+        for name, kw in CASES.items()
+    ],
+)
 def test_compacted_runs_equal_the_whole_budget_engine_bit_for_bit(fit, starts, kw):
     kw = dict(steps=150, sizes=SIZES, **kw)
     packed = descend(fit, starts, compact=True, **kw)
