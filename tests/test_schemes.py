@@ -250,6 +250,12 @@ def test_own_labels_and_bad_inputs(himmel):
         scheme_starts(prob, {})
 
 
+def test_an_initialiser_in_a_tuple_is_refused_with_the_fix(mlp):
+    prob, _ = mlp
+    with pytest.raises(ParameterError, match="pass the initialiser itself"):
+        scheme_starts(prob, {"fan-in": (fan_in, 3)}, count=2)
+
+
 def test_scheme_figures_validate_and_show_the_table(himmel):
     _, cmp = himmel
     shares_fig = F.scheme_shares_figure(cmp)

@@ -276,6 +276,13 @@ def scheme_starts(
             raise ParameterError(f"scheme names must be non-empty strings; got {name!r}.")
         if isinstance(value, Starts):
             part = as_starts(problem, value)
+        elif isinstance(value, tuple) and value and callable(value[0]):
+            raise ParameterError(
+                f"the scheme {name!r} is a tuple holding an initialiser; pass the initialiser "
+                "itself (it is drawn count= times from seed=; init_count= and init_seed= in "
+                "the Explorer), or initializer_starts(problem, init, count, seed=...) for a "
+                "seed of its own."
+            )
         elif callable(value):
             if count is None:
                 raise ParameterError(
