@@ -23,7 +23,7 @@ from basinview.core import (
     random_starts,
     run_padding_floor,
 )
-from basinview.explorer.schemes import ALL_SCHEMES, CLICKED, uses_connectivity
+from basinview.explorer.schemes import ALL_SCHEMES, CLICKED, same_level_note, uses_connectivity
 from basinview.explorer.views import comparison_table
 
 
@@ -139,6 +139,24 @@ def test_connectivity_groups_name_the_wells_and_keep_their_names(explorer):
     names2 = np.asarray(sol2.names)[sol2.label]
     side2 = np.sign(runs2.final[:, 0])
     assert set(names2[side2 < 0]) == {left} and set(names2[side2 > 0]) == {right}
+
+
+def test_groups_at_one_loss_suggest_declaring_the_symmetry():
+    from basinview.core import connect_runs
+    from basinview.core.symmetries import sign_flip
+
+    # a problem of its own: grouping registers names on the problem it is given
+    problem = Problem(double_well, np.zeros(2, np.float32))
+
+    # (x^2 - 1)^2 + y^2 / 2 is even in x: its wells at x = -1 and x = +1 are copies
+    # (computed from the formula), joined by no low straight segment.
+    ends = np.array([[-1.0, 0.0], [-0.999, 0.001], [1.0, 0.0], [1.001, -0.001]])
+    plain = connect_runs(problem, ends, tolerance=0.05)
+    assert len(plain) == 2
+    note = same_level_note(plain)
+    assert "same loss" in note and "symmetries" in note
+    merged = connect_runs(problem, ends, tolerance=0.05, symmetries=[sign_flip([[0]])])
+    assert len(merged) == 1 and same_level_note(merged) == ""
 
 
 def test_the_comparison_is_compare_schemes_on_the_same_starts(explorer, problem):

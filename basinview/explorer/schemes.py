@@ -253,6 +253,35 @@ def solution_names(solutions: Any, limit: int = 6) -> str:
     return " · solutions by connectivity " + ", ".join(parts)
 
 
+def same_level_note(solutions: Any, rtol: float = 1e-3) -> str:
+    """A status note when two or more groups end at the same loss and no symmetry is declared.
+
+    Groups of equal loss that no low segment joins are often copies of one
+    solution under a symmetry of the model (a periodic parameter, a sign flip,
+    exchangeable units); declared symmetries merge them. Empty when that does
+    not apply.
+    """
+    if solutions is None or len(solutions) < 2 or solutions.symmetries:
+        return ""
+    low = np.asarray(solutions.loss_min, dtype=float)
+    ok = np.isfinite(low)
+    if ok.sum() < 2:
+        return ""
+    ref = float(np.min(low[ok]))
+    same = [
+        solutions.names[k]
+        for k in np.flatnonzero(ok)
+        if abs(low[k] - ref) <= rtol * max(abs(ref), 1e-12)
+    ]
+    if len(same) < 2:
+        return ""
+    return (
+        f"{', '.join(same)} end at the same loss: if the model has a symmetry (a periodic "
+        "parameter, a sign flip, exchangeable units), declare it with "
+        "connect_options={'symmetries': [...]} to merge its copies"
+    )
+
+
 def scheme_comparison(
     problem: Problem, runs: Runs, minima: Any, solutions: Any, *, confidence: float = 0.95
 ) -> SchemeComparison | None:

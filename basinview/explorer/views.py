@@ -21,7 +21,7 @@ from ..figures.schemes import solution_order
 from ..figures.text import readable_table, significant
 from .compute import ViewResults
 from .long_work import letters, view_key
-from .schemes import ALL_SCHEMES, scheme_comparison, solution_names
+from .schemes import ALL_SCHEMES, same_level_note, scheme_comparison, solution_names
 from .state import ViewState
 
 __all__ = ["SCHEMES_VIEW", "SIDE_VIEWS", "Views", "comparison_table", "html_table"]
@@ -126,6 +126,9 @@ class Views:
                 "no run converged, so no critical point is marked: run more steps or "
                 f"loosen the tolerance{grouped}",
             ]
+        level = same_level_note(results.solutions)
+        if level:
+            notes = [*notes, level]
         coarse = " · coarse preview, computing full resolution…" if results.preview else ""
         return (
             f"{self.describe(results.state)} · {len(runs)} runs: {summary}{found}"
