@@ -128,6 +128,23 @@ def test_a_fixed_call_size_compiles_one_program_for_any_count():
         segment_barriers(prob, [[0.0, 0.0]], [[1.0, 0.0]], call_size=0)
 
 
+def test_the_registry_stays_bounded_and_says_when_it_is_full(monkeypatch):
+    # common practice: a cache that lives as long as the session must be bounded
+    from basinview.core import solutions
+
+    monkeypatch.setattr(solutions, "MAX_REPRESENTATIVES", 3)
+    prob = core.Problem(wells, jnp.zeros(2))
+    reg = solutions.solution_groups(prob)
+    far = np.array([[1.0, 0.0], [-1.0, 0.0]])
+    with pytest.warns(MinimaWarning, match="connected"):
+        connect_runs(prob, far, tolerance=0.05)  # two groups, two representatives
+    assert len(reg.points) == 2
+    with pytest.warns(MinimaWarning, match="full"):
+        # two new isolated points (no low segment to the wells or each other)
+        connect_runs(prob, np.array([[1.0, 3.0], [-1.0, -3.0]]), tolerance=0.05)
+    assert len(reg.points) == 3 and reg.full
+
+
 def test_runs_from_descent_and_outcome_labels():
     prob = core.Problem(wells, jnp.zeros(2))
     starts = np.array([[-2.0, 0.5], [-0.5, -0.3], [0.4, 0.2], [1.8, -0.4], [1e3, 0.0]])

@@ -276,14 +276,15 @@ def connect_runs(
     comps = sorted(set(comp_of_cand.tolist()), key=lambda c: loss[cand[comp_of_cand == c][0]])
     # identities: a component keeps the earliest registered id among its representatives
     gid_of: dict[int, int] = {}
+    unkept = 0
     for c in comps:
         members = [r for r in range(nreps) if find(r) == c]
         known = [rep_gid[r] for r in members if rep_gid[r] >= 0]
         gid = registry.merge(known) if known else registry.new_group()
         gid_of[c] = gid
         for r in members:
-            if rep_gid[r] < 0:
-                registry.add(gid, reps[r], loss[rep_row[r]])
+            if rep_gid[r] < 0 and not registry.add(gid, reps[r], loss[rep_row[r]]):
+                unkept += 1
     g = len(comps)
     index = {c: j for j, c in enumerate(comps)}
     label = np.where(code != 0, code, 0).astype(np.int64)
@@ -322,6 +323,15 @@ def connect_runs(
     best = np.array([pts[cand[comp_of_cand == c][0]] for c in comps]).reshape(g, problem.size)
     member_loss = [loss[label == j] for j in range(g)]
     ids = np.array([gid_of[c] for c in comps], dtype=np.int64)
+    if unkept:
+        warnings.warn(
+            f"connect_runs: this problem's registry of solution names is full "
+            f"({len(registry.owners)} representatives), so {unkept} new solution"
+            f"{'s are' if unkept != 1 else ' is'} named for this call only; a later call may "
+            "name them differently (memory and comparison cost stay bounded).",
+            MinimaWarning,
+            stacklevel=2,
+        )
     if cand.size > 1 and g == cand.size:
         warnings.warn(
             f"connect_runs: none of the {cand.size} end points is connected to another "

@@ -28,13 +28,21 @@ def group_name(index: int) -> str:
     return f"S{int(index) + 1}"
 
 
+#: Most representatives a registry keeps (memory and the cost of comparing new end
+#: points with them stay bounded over a long interactive session).
+MAX_REPRESENTATIVES = 64
+
+
 class SolutionRegistry:
     """Representatives of the solution groups found so far on one problem.
 
     Each representative belongs to a group id; ids follow registration order
     and give the name (:func:`group_name`) and colour index. When a later
     call finds that two groups are connected, the later id becomes an alias
-    of the earlier one. The registry grows only and lives with the problem.
+    of the earlier one. The registry grows only and lives with the problem,
+    up to :data:`MAX_REPRESENTATIVES` representatives: past that, a solution
+    found for the first time still gets a new name in its call, but no
+    representative is kept, so a later call names it afresh (:attr:`full`).
     """
 
     def __init__(self, size: int) -> None:
@@ -74,10 +82,19 @@ class SolutionRegistry:
         self._parent.append(len(self._parent))
         return len(self._parent) - 1
 
-    def add(self, gid: int, point: np.ndarray, loss: float) -> None:
+    @property
+    def full(self) -> bool:
+        """Whether no more representatives are kept (see :data:`MAX_REPRESENTATIVES`)."""
+        return len(self._owner) >= MAX_REPRESENTATIVES
+
+    def add(self, gid: int, point: np.ndarray, loss: float) -> bool:
+        """Keep ``point`` as a representative of group ``gid``; False when the registry is full."""
+        if self.full:
+            return False
         self._points = np.vstack([self._points, np.asarray(point, np.float64)[None]])
         self._loss.append(float(loss))
         self._owner.append(int(gid))
+        return True
 
     def merge(self, ids: list[int]) -> int:
         roots = sorted({self.find(i) for i in ids})
