@@ -133,15 +133,15 @@ def test_the_registry_stays_bounded_and_says_when_it_is_full(monkeypatch):
     from basinview.core import solutions
 
     monkeypatch.setattr(solutions, "MAX_REPRESENTATIVES", 3)
-    prob = core.Problem(wells, jnp.zeros(2))
+    # four wells at (+-1, +-1), a barrier of 1 between neighbours (from the formula)
+    prob = core.Problem(lambda p: (p[0] ** 2 - 1) ** 2 + (p[1] ** 2 - 1) ** 2, jnp.zeros(2))
     reg = solutions.solution_groups(prob)
-    far = np.array([[1.0, 0.0], [-1.0, 0.0]])
     with pytest.warns(MinimaWarning, match="connected"):
-        connect_runs(prob, far, tolerance=0.05)  # two groups, two representatives
+        connect_runs(prob, np.array([[1.0, 1.0], [-1.0, 1.0]]), tolerance=0.05)
     assert len(reg.points) == 2
-    with pytest.warns(MinimaWarning, match="full"):
-        # two new isolated points (no low segment to the wells or each other)
-        connect_runs(prob, np.array([[1.0, 3.0], [-1.0, -3.0]]), tolerance=0.05)
+    with pytest.warns(MinimaWarning) as caught:
+        connect_runs(prob, np.array([[1.0, -1.0], [-1.0, -1.0]]), tolerance=0.05)
+    assert any("full" in str(w.message) and "1 new solution is" in str(w.message) for w in caught)
     assert len(reg.points) == 3 and reg.full
 
 
