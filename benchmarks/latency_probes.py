@@ -131,13 +131,20 @@ def timed_change(
         raise RuntimeError(f"{control} -> {value!r}: the Explorer reported {ex.status.value!r}")
     if path_data(ex.main) == before:
         raise RuntimeError(f"{control} -> {value!r}: the map's descent paths did not change")
+    return _row(f"{control} -> {value}", ex, clock, compiled, seconds, cpu, len(ex.results.runs))
+
+
+def _row(
+    change: str, ex: Any, clock: StageClock, compiled: Any, seconds: float, cpu: float, runs: int
+) -> dict[str, Any]:
+    """One measured change: wall and CPU milliseconds, compilations, stages, breakdown."""
     return {
-        "change": f"{control} -> {value}",
+        "change": change,
         "ms": 1e3 * seconds,
         "cpu_ms": 1e3 * cpu,
         "compilations": compiled.count,
         "compile_seconds": compiled.seconds,
-        "runs": len(ex.results.runs),
+        "runs": runs,
         "stages": sorted(ex.computer.seconds),
         "breakdown_ms": clock.breakdown(seconds),
     }
@@ -176,16 +183,7 @@ def computed_change(ex: Any, clock: StageClock, n: int) -> dict[str, Any]:
         seconds, cpu = time.perf_counter() - t0, cpu_seconds() - cpu0
     if len(results.runs) != n + len(state.start_points) or "runs" not in stages:
         raise RuntimeError(f"n_starts -> {n}: {len(results.runs)} runs after the update")
-    return {
-        "change": f"n_starts -> {n}",
-        "ms": 1e3 * seconds,
-        "cpu_ms": 1e3 * cpu,
-        "compilations": compiled.count,
-        "compile_seconds": compiled.seconds,
-        "runs": len(results.runs),
-        "stages": sorted(ex.computer.seconds),
-        "breakdown_ms": clock.breakdown(seconds),
-    }
+    return _row(f"n_starts -> {n}", ex, clock, compiled, seconds, cpu, len(results.runs))
 
 
 def figure_costs(ex: Any, repeats: int = 5) -> dict[str, Any]:
