@@ -74,11 +74,23 @@ def _command(out: str, resolution: int, steps: int) -> list[str]:
     ]  # fmt: skip
 
 
+def _pin(core: int | None) -> Any:
+    """A ``preexec_fn`` that keeps the child process (and its threads) on one core."""
+    if core is None:
+        return None
+    return lambda: os.sched_setaffinity(0, {core})
+
+
 def _run(folder: Path, kind: str, resolution: int, steps: int, tag: str) -> dict[str, Any]:
     out = f"{kind}-{tag}.npz"
     base = {**os.environ, "PYTHONPATH": str(ROOT)}
     base.pop("XLA_FLAGS", None)
-    if kind == "two":
+    cores: list[int | None] = [None, None]
+    if kind == "one_core":
+        cores = [0]
+    if kind == "two_cores":
+        cores = [0, 1]
+    if kind in ("two", "two_cores"):
         port = _port()
         envs = [
             {**base, "JAX_NUM_CPU_DEVICES": "1", "BASINVIEW_COORDINATOR": f"127.0.0.1:{port}",
@@ -91,7 +103,10 @@ def _run(folder: Path, kind: str, resolution: int, steps: int, tag: str) -> dict
     t0 = time.perf_counter()
     command = _command(out, resolution, steps)
     pipes = {"stdout": subprocess.PIPE, "stderr": subprocess.PIPE, "text": True}
-    procs = [subprocess.Popen(command, cwd=folder, env=env, **pipes) for env in envs]
+    procs = [
+        subprocess.Popen(command, cwd=folder, env=env, preexec_fn=_pin(core), **pipes)
+        for env, core in zip(envs, cores)
+    ]
     for p in procs:
         _stdout, stderr = p.communicate(timeout=1800)
         if p.returncode:
@@ -231,7 +246,7 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
     if args.quick:
         args.resolution, args.steps, args.rows, args.repeats = 6, 20, 100, 1
     load_start = os.getloadavg()
-    kinds = ("one", "two", "one_two_devices")
+    kinds = ("one", "two", "one_two_devices", "one_core", "two_cores")
     times: dict[str, list[dict[str, Any]]] = {k: [] for k in kinds}
     with tempfile.TemporaryDirectory() as tmp:
         folder = Path(tmp)
@@ -271,6 +286,10 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
         "speedup_two_processes": one / two,
         "speedup_two_processes_basin_map": median("one", "basin_map") / median("two", "basin_map"),
         "speedup_two_devices": one / median("one_two_devices", "seconds"),
+        "speedup_two_pinned_processes": median("one_core", "seconds")
+        / median("two_cores", "seconds"),
+        "speedup_two_pinned_processes_basin_map": median("one_core", "basin_map")
+        / median("two_cores", "basin_map"),
         "identical_results": identical,
         "per_start_cpu_seconds": median("one", "cpu") / starts,
         "per_start_seconds_one_device": one / starts,
@@ -283,7 +302,10 @@ def main(argv: list[str] | None = None) -> dict[str, Any]:
     print(json.dumps({k: result[k] for k in ("seconds", "basin_map_seconds",
                                              "speedup_two_processes_basin_map",
                                              "speedup_two_processes",
-                                             "speedup_two_devices", "identical_results",
+                                             "speedup_two_devices",
+                                             "speedup_two_pinned_processes",
+                                             "speedup_two_pinned_processes_basin_map",
+                                             "identical_results",
                                              "load_average_start", "load_average_end")}, indent=2))  # fmt: skip
     return result
 

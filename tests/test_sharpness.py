@@ -400,3 +400,55 @@ def test_recorded_settings_rerun_with_the_same_sharpness_tracking():
     bad["sharpness"] = {"every": 0}
     with pytest.raises(SettingsError, match="sharpness"):
         Settings.from_json(json.dumps(bad))
+
+
+@pytest.mark.parametrize("steps", [1, 2, 3, 6, 12])
+def test_lanczos_ritz_value_equals_rayleigh_ritz_on_the_krylov_space(steps):
+    # Source: Golub & Van Loan, Matrix Computations, ch. 10 (from memory): m Lanczos
+    # steps from q give the Rayleigh-Ritz values of A on the Krylov space
+    # span{q, Aq, ..., A^(m-1) q}. Reference: that space from numpy.linalg.qr and the
+    # top eigenvalue of Q^T A Q from numpy.linalg.eigvalsh. Small step counts run
+    # written out, larger ones (and any traced count, ``max_steps``) in a loop: all
+    # must give the same pair.
+    from basinview.core.sharpness import top_eigenpair
+
+    rng = np.random.default_rng(7)
+    n = 20
+    a = rng.standard_normal((n, n))
+    a = a + a.T
+    q = rng.standard_normal(n)
+    krylov = np.stack([np.linalg.matrix_power(a, j) @ q for j in range(steps)], axis=1)
+    basis, _ = np.linalg.qr(krylov)
+    expected = np.linalg.eigvalsh(basis.T @ a @ basis)[-1]
+    with jax.enable_x64(True):
+        am = jnp.asarray(a)
+        lam, vec = jax.jit(lambda v: top_eigenpair(lambda x: am @ x, v, steps))(jnp.asarray(q))
+        lam_loop, vec_loop = jax.jit(
+            lambda v: top_eigenpair(lambda x: am @ x, v, steps, max_steps=steps)
+        )(jnp.asarray(q))
+        lam, vec, lam_loop, vec_loop = (np.asarray(x) for x in (lam, vec, lam_loop, vec_loop))
+    np.testing.assert_allclose(lam, expected, rtol=1e-9)
+    np.testing.assert_allclose(lam_loop, expected, rtol=1e-9)
+    np.testing.assert_allclose(np.abs(vec @ vec_loop), 1.0, rtol=1e-8)
+    # the Ritz vector is a unit vector of the Krylov space with that Rayleigh quotient
+    np.testing.assert_allclose(np.linalg.norm(vec), 1.0, rtol=1e-12)
+    np.testing.assert_allclose(vec @ a @ vec, expected, rtol=1e-9)
+    np.testing.assert_allclose(np.linalg.norm(basis @ (basis.T @ vec)), 1.0, rtol=1e-9)
+
+
+def test_lanczos_from_an_eigenvector_stops_at_its_eigenvalue():
+    # Source: definition: the Krylov space of an eigenvector is one-dimensional, so
+    # every further step must leave the Ritz pair at that eigenpair (numpy.linalg.eigh
+    # as the reference library for the pair)
+    from basinview.core.sharpness import top_eigenpair
+
+    rng = np.random.default_rng(8)
+    a = rng.standard_normal((10, 10))
+    a = a + a.T
+    values, vectors = np.linalg.eigh(a)
+    with jax.enable_x64(True):
+        am = jnp.asarray(a)
+        for steps in (4, 10):
+            lam, vec = top_eigenpair(lambda x: am @ x, jnp.asarray(vectors[:, 3]), steps)
+            np.testing.assert_allclose(lam, values[3], rtol=1e-10)
+            np.testing.assert_allclose(np.abs(np.asarray(vec) @ vectors[:, 3]), 1.0, rtol=1e-10)

@@ -88,6 +88,7 @@ __all__ = [
 ]
 
 MAX_ITERATIONS = 64
+UNROLL_STEPS = 8  # Lanczos steps written out rather than looped (see _lanczos_unrolled)
 
 
 @dataclass(frozen=True)
@@ -178,6 +179,8 @@ def top_eigenpair(
     eps = jnp.finfo(dtype).eps
     tiny = jnp.finfo(dtype).tiny
     q0 = start / jnp.maximum(jnp.linalg.norm(start), tiny)
+    if max_steps is None and m <= UNROLL_STEPS:
+        return _ritz_pair(*_lanczos_unrolled(matvec, q0, m), q0)
     basis = jnp.zeros((m, n), dtype).at[0].set(q0)
 
     def body(j: jax.Array, carry: tuple[jax.Array, ...]) -> tuple[jax.Array, ...]:
@@ -203,6 +206,50 @@ def top_eigenpair(
     alpha = jnp.where(rows >= count, alpha[0], alpha)
     off = jnp.where(rows >= count - 1, 0, beta)[: m - 1]
     basis = jnp.where((rows >= count)[:, None], 0, basis)
+    return _ritz_pair(basis, alpha, off, q0)
+
+
+def _lanczos_unrolled(
+    matvec: Callable[[jax.Array], jax.Array], q0: jax.Array, m: int
+) -> tuple[jax.Array, jax.Array, jax.Array]:
+    """``m`` Lanczos steps written out (``m`` small and static): ``(basis, alpha, beta)``.
+
+    The same arithmetic as :func:`top_eigenpair`'s loop, without a loop: each
+    step's basis is the list so far, and the last step's residual, which only
+    the next step would use, is not reorthogonalised. Measured on a
+    1,185-parameter network (16 runs, 2 steps): 2.7 ms against 3.5 ms for the
+    loop, whose dynamic slices of the basis cost more than the two
+    Hessian-vector products' other work.
+    """
+    dtype = q0.dtype
+    eps = jnp.finfo(dtype).eps
+    tiny = jnp.finfo(dtype).tiny
+    qs, alphas, betas = [q0], [], []
+    alive = jnp.array(True)
+    for j in range(m):
+        q = qs[j]
+        w = matvec(q)
+        a = q @ w
+        alphas.append(a if j == 0 else jnp.where(alive, a, alphas[0]))
+        if j + 1 == m:
+            break
+        size = jnp.linalg.norm(w)
+        basis = jnp.stack(qs)
+        w = w - basis.T @ (basis @ w)
+        w = w - basis.T @ (basis @ w)
+        b = jnp.linalg.norm(w)
+        ok = alive & (b > 64 * eps * (size + tiny))
+        qs.append(jnp.where(ok, w / jnp.where(ok, b, 1), 0))
+        betas.append(jnp.where(ok, b, 0))
+        alive = ok
+    off = jnp.stack(betas) if betas else jnp.zeros(0, dtype)
+    return jnp.stack(qs), jnp.stack(alphas), off
+
+
+def _ritz_pair(
+    basis: jax.Array, alpha: jax.Array, off: jax.Array, q0: jax.Array
+) -> tuple[jax.Array, jax.Array]:
+    """Top Ritz value and unit Ritz vector of a Lanczos basis and tridiagonal matrix."""
     tri = jnp.diag(alpha) + jnp.diag(off, 1) + jnp.diag(off, -1)
     values, vectors = jnp.linalg.eigh(tri)
     ritz = basis.T @ vectors[:, -1]
@@ -266,24 +313,36 @@ def loop_tracker(
     grad = jax.grad(flat_loss)
     first_in_loop = every > 1
 
-    def hvp(theta: jax.Array, v: jax.Array, data: Any) -> jax.Array:
-        return jax.jvp(lambda t: grad(t, data), (theta,), (v,))[1]
+    def measure(theta, opt_state, hyper, probes, sizes, data):
+        """One run: ``(probes, lambda, lambda_pre)`` after ``sizes`` (static) Lanczos steps.
 
-    def measure(theta, opt_state, hyper, probes, size, data):
-        """One run: ``(probes, lambda, lambda_pre)`` after ``size`` (static) Lanczos steps.
-
-        The basis has exactly ``size`` rows: a warm record pays for ``iterations``
-        steps only (its reorthogonalisation and tridiagonal eigenproblem too), not
-        for the cold start's ``first_iterations``.
+        ``sizes = (plain, preconditioned)``: the steps of each operator, each
+        with a basis of exactly that size, so a warm record pays for
+        ``iterations`` steps only (its reorthogonalisation and tridiagonal
+        eigenproblem too), not for a cold start's ``first_iterations``. A
+        preconditioned size of 0 skips that operator (iterate 0 has no ``P``).
         """
         # One linearisation of the gradient at ``theta`` serves every Lanczos step
         # (and both operators of an adaptive rule): each step then pays only the
         # tangent part of a Hessian-vector product, not the gradient again.
         _, hv = jax.linearize(lambda t: grad(t, data), theta)
+        size, size_pre = sizes
+        nan = jnp.array(jnp.nan, theta.dtype)
         if not adaptive:
             lam, v = top_eigenpair(hv, probes[0], size)
-            return (v,), lam, jnp.array(jnp.nan, theta.dtype)
+            return (v,), lam, nan
+        if not size_pre:
+            lam, v = top_eigenpair(hv, probes[0], size)
+            return (v, probes[1]), lam, nan
         scale = jax.lax.rsqrt(rule.preconditioner(opt_state, hyper))
+
+        def pre(q: jax.Array) -> jax.Array:
+            return scale * hv(scale * q)
+
+        if size != size_pre:  # the first preconditioned record: only that one starts cold
+            lam, v = top_eigenpair(hv, probes[0], size)
+            lam_p, v_p = top_eigenpair(pre, probes[1], size_pre)
+            return (v, v_p), lam, lam_p
         scales = jnp.stack([jnp.ones_like(scale), scale])
 
         def one(s: jax.Array, q0: jax.Array) -> tuple[jax.Array, jax.Array]:
@@ -297,14 +356,10 @@ def loop_tracker(
         v0 = jax.random.normal(jax.random.key(20260), theta.shape[1:], theta.dtype)
         probes = tuple(jnp.broadcast_to(v0, theta.shape) for _ in range(1 + adaptive))
         sharp = jnp.full((n_rec, n_runs), jnp.nan, theta.dtype)
-        if not first_in_loop:
-
-            def plain(th: jax.Array, p: jax.Array) -> tuple[jax.Array, jax.Array]:
-                lam, v = top_eigenpair(lambda q: hvp(th, q, data), p, m0)
-                return v, lam
-
-            v, lam = batched(plain, theta, probes[0])
-            probes = (v, *probes[1:])
+        if not first_in_loop:  # every == 1: iterate 0 is recorded here, cold, plain only
+            probes, lam, _ = batched(
+                lambda t, q: measure(t, None, None, q, (m0, 0), data), theta, probes
+            )
             sharp = sharp.at[0].set(lam)
         return probes, sharp, jnp.full((n_rec, n_runs), jnp.nan, theta.dtype)
 
@@ -322,22 +377,30 @@ def loop_tracker(
             opt_state = jax.tree_util.tree_map(pick, before.opt_state, after.opt_state)
             # A cold record (a run's first, and for adaptive rules the first
             # preconditioned one, at iterate ``every``) takes ``first_iterations``
-            # steps; every other record ``iterations``. The predicate depends on
-            # the step only, so this is a branch, not a select over runs.
-            cold = first | (k + 1 == every) if adaptive else first
-
-            def measured(size: int) -> Callable[[Any], tuple[Any, ...]]:
+            # steps for the operator that starts cold and ``iterations`` for a warm
+            # one; iterate 0 of an adaptive rule measures the plain operator only
+            # (no ``P`` exists yet). The predicates depend on the step only, so
+            # this is a branch, not a select over runs.
+            def measured(sizes: tuple[int, int]) -> Callable[[Any], tuple[Any, ...]]:
                 def run(args: tuple[Any, ...]) -> tuple[Any, ...]:
                     th, st, p = args
                     return batched(
-                        lambda t, s, h, q: measure(t, s, h, q, size, data), th, st, hyper, p
+                        lambda t, s, h, q: measure(t, s, h, q, sizes, data), th, st, hyper, p
                     )
 
                 return run
 
-            new, lam, lam_p = jax.lax.cond(
-                cold, measured(m0), measured(m), (theta, opt_state, probes)
-            )
+            if adaptive:
+                branch = jnp.where(first, 1, jnp.where(k + 1 == every, 2, 0))
+                new, lam, lam_p = jax.lax.switch(
+                    branch,
+                    [measured((m, m)), measured((m0, 0)), measured((m, m0))],
+                    (theta, opt_state, probes),
+                )
+            else:
+                new, lam, lam_p = jax.lax.cond(
+                    first, measured((m0, 0)), measured((m, 0)), (theta, opt_state, probes)
+                )
             mask = before.running | first
             nan = jnp.array(jnp.nan, lam.dtype)
             kept = [jnp.where(mask[:, None], new[0], probes[0])]
