@@ -9,7 +9,11 @@ gradient descent each. Three runs of the same command, interleaved
 
 * ``one``: one process with one CPU device (``JAX_NUM_CPU_DEVICES=1``);
 * ``two``: two processes of one device each on 127.0.0.1 (jax.distributed, gloo);
-* ``one_two_devices``: one process with two devices (for comparison).
+* ``one_two_devices``: one process with two devices (for comparison);
+* ``one_core`` and ``two_cores``: ``one`` and ``two`` with each process pinned
+  to its own core (``os.sched_setaffinity``), as processes on separate
+  machines would be: an unpinned process already spreads its work over both
+  cores, so two unpinned processes on one 2-core machine compete for them.
 
 Each run's time is the ``seconds`` its results file records (reading the
 inputs, computing, gathering, writing; the JAX start-up and the joining of
@@ -165,30 +169,36 @@ def estimate(
     machines: int = 16,
     cores: int = 2,
     bandwidth: float = 1.25e9,
-    efficiency: float = 0.95,
+    efficiency: float | None = None,
 ) -> dict[str, Any]:
     """Seconds and bytes of a basin map of ``starts`` starts on ``machines`` machines.
 
     A simulation from this benchmark's measurements, not a run. Compute: the
-    CPU seconds per start of the one-process run (its CPU time times the basin
-    map's share of its wall time, over its starts; CPU time is what a loaded
-    machine distorts least), spread over ``machines x cores`` devices at
-    ``efficiency`` (0.95: the two-device speed-up of W4 in
-    ``benchmarks/results.json``, 1.91x, measured on a quieter machine). Gather:
-    the measured bytes per start, of which every process receives the others'
-    share (``process_allgather``) over links of ``bandwidth`` bytes/s (10 Gbit/s
-    Ethernet by default). Process 0 then finds the critical points at the
-    measured seconds per run. Fixed: the CPU seconds a second process added to
-    the run (start-up, compilation, collectives), paid once per process in parallel.
+    CPU seconds per start of the one-process run pinned to one core (its CPU
+    time times the basin map's share of its wall time, over its starts: a
+    core's worth of work, since an unpinned process spreads over both cores
+    at less than twice the speed), spread over ``machines x cores`` devices at
+    ``efficiency`` (default: the measured basin-map speed-up of two pinned
+    processes over one, halved). Gather: the measured bytes per start, of
+    which every process receives the others' share (``process_allgather``)
+    over links of ``bandwidth`` bytes/s (10 Gbit/s Ethernet by default).
+    Process 0 then finds the critical points at the measured seconds per run.
+    Fixed: the CPU seconds a second process added to the run (start-up,
+    compilation, collectives), paid once per process in parallel. Results
+    written before the pinned runs existed use the unpinned runs and 0.95.
     """
-    share = measured["basin_map_seconds"]["one"] / measured["seconds"]["one"]
-    per_start = measured["cpu"]["one"] * share / measured["workload"]["starts"]
+    pinned = "one_core" in measured["seconds"]
+    one, two = ("one_core", "two_cores") if pinned else ("one", "two")
+    if efficiency is None:
+        efficiency = measured["speedup_two_pinned_processes_basin_map"] / 2 if pinned else 0.95
+    share = measured["basin_map_seconds"][one] / measured["seconds"][one]
+    per_start = measured["cpu"][one] * share / measured["workload"]["starts"]
     devices = machines * cores
     compute = starts * per_start / (devices * efficiency)
     volume = starts * measured["gathered_bytes_per_start"]
     gather = volume * (machines - 1) / machines / bandwidth
     minima = starts * measured.get("minima_seconds_per_run", 0.0)
-    fixed = max(measured["cpu"]["two"] - measured["cpu"]["one"], 0.0)
+    fixed = max(measured["cpu"][two] - measured["cpu"][one], 0.0)
     return {
         "starts": starts,
         "machines": machines,

@@ -66,7 +66,7 @@ def _diabetes() -> tuple[np.ndarray, np.ndarray]:
 
 
 def _launch(
-    folder: Path, out: str, env: dict[str, str], extra: tuple[str, ...] = ()
+    folder: Path, out: str, env: dict[str, str], extra: tuple[str, ...] = (), core=None
 ) -> subprocess.Popen:
     full = {**os.environ, "PYTHONPATH": str(ROOT), "BASINVIEW_HEARTBEAT_SECONDS": "3", **env}
     for name in ("JAX_NUM_CPU_DEVICES", "XLA_FLAGS"):
@@ -78,17 +78,21 @@ def _launch(
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
+        preexec_fn=None if core is None else (lambda: os.sched_setaffinity(0, {core})),
     )
 
 
-def _pair(folder: Path, out: str, env: dict[str, str], extra=((), ())) -> list[subprocess.Popen]:
+def _pair(
+    folder: Path, out: str, env: dict[str, str], extra=((), ()), cores=(None, None)
+) -> list[subprocess.Popen]:
     common = {
         "BASINVIEW_COORDINATOR": f"127.0.0.1:{_free_port()}",
         "BASINVIEW_PROCESS_COUNT": "2",
         **env,
     }
     return [
-        _launch(folder, out, {**common, "BASINVIEW_PROCESS_ID": str(p)}, extra[p]) for p in (0, 1)
+        _launch(folder, out, {**common, "BASINVIEW_PROCESS_ID": str(p)}, extra[p], cores[p])
+        for p in (0, 1)
     ]
 
 
@@ -121,6 +125,8 @@ def runs(tmp_path_factory):
         "dies": _pair(folder, "dies.npz", {"DIE_AS_PROCESS": "1"}),
         "mismatch": _pair(folder, "mismatch.npz", {}, ((), ("--steps", "301"))),
         "other_data": _pair(folder, "other_data.npz", {}, ((), ("--data", "other.npz"))),
+        # each process on its own core, as on two machines
+        "pinned": _pair(folder, "pinned.npz", {}, cores=(0, 1)),
     }
     ended: dict[int, float] = {}
     deadline = time.monotonic() + 400
@@ -157,6 +163,25 @@ def test_two_processes_give_the_one_process_results(runs):
     header = results_header(folder / "two.npz")
     assert header["run"]["processes"] == 2 and header["run"]["devices"] == 2
     assert not [p for p in folder.iterdir() if p.name.endswith(".partial")]
+
+
+def test_processes_that_share_cores_are_warned_and_pinned_ones_are_not(runs):
+    # Measured (docs/distributed.md): one process already uses every core it may, so two
+    # unpinned processes on one 2-core machine ran a basin map at 0.96x of one; pinned,
+    # 1.71x. The run says so when its processes share a machine's cores.
+    folder, out, _problem = runs
+    assert os.cpu_count() >= 2
+    two, pinned = out["two"], out["pinned"]
+    for p in two + pinned:
+        assert p["rc"] == 0, p["err"][-2000:]
+    assert "processes 0, 1 run on one machine and may use the same cores" in two[0]["err"]
+    assert "taskset" in two[0]["err"] and "--devices" in two[0]["err"]
+    assert "same cores" not in two[1]["err"]  # process 0 says it once
+    assert all("same cores" not in p["err"] for p in pinned)
+    with np.load(folder / "one.npz") as one, np.load(folder / "pinned.npz") as other:
+        for key in one.files:
+            if key != "header":
+                assert np.array_equal(one[key], other[key], equal_nan=one[key].dtype.kind == "f")
 
 
 def test_results_are_right_and_load_back(runs):

@@ -55,6 +55,32 @@ def test_top5_with_at_most_1_2x_eigsh_matvecs(x64, loader):
     assert spec.lambda_min == pytest.approx(dense[0], rel=1e-8)
 
 
+@pytest.mark.parametrize("loader", [load_breast_cancer, load_digits])
+def test_top_values_only_stop_no_later_and_bound_the_smallest(x64, loader):
+    prob = _problem(loader)
+    point = prob.theta0
+    both = hessian_spectrum(prob, point, k=5, method="lanczos")
+    top = hessian_spectrum(prob, point, k=5, method="lanczos", smallest=False)
+    assert top.matvecs <= both.matvecs
+    # Source: scipy.sparse.linalg.eigsh (ARPACK), top 5 algebraic eigenvalues
+    ref = np.sort(scipy.sparse.linalg.eigsh(prob_operator(prob, point), k=5, which="LA")[0])
+    np.testing.assert_allclose(top.values, ref[::-1], rtol=1e-10)
+    # a Ritz value lies inside the spectrum: the smallest one reached bounds the smallest
+    # eigenvalue from above (Source: Cauchy interlacing, Golub & Van Loan ch. 8, from memory;
+    # the reference value from jax.hessian + numpy.linalg.eigvalsh)
+    dense = np.linalg.eigvalsh(
+        np.asarray(jax.hessian(prob.flat_loss)(jnp.asarray(point), prob.data))
+    )
+    assert top.lambda_min >= dense[0] - 1e-12 * np.abs(dense).max()
+
+
+def prob_operator(prob, point):
+    return scipy.sparse.linalg.LinearOperator(
+        (prob.size, prob.size), matvec=lambda v: np.asarray(prob.hvp(point, np.ravel(v))),
+        dtype=float,
+    )  # fmt: skip
+
+
 def test_a_loose_tolerance_stops_sooner_and_bad_tolerances_are_refused(x64):
     prob = _problem(load_digits)
     tight = hessian_spectrum(prob, prob.theta0, k=2, method="lanczos")

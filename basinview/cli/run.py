@@ -118,7 +118,7 @@ def _compute(args: argparse.Namespace, cluster: Any) -> int:
     import jax
 
     from ..core import analyse_shared, save_results
-    from ..core.cluster import agree
+    from ..core.cluster import agree, shared_cores_note
 
     started = time.perf_counter()
     error, prepared = "", None
@@ -133,6 +133,9 @@ def _compute(args: argparse.Namespace, cluster: Any) -> int:
     assert prepared is not None
     problem, view, _, fingerprint = prepared
     agree(cluster, "comparing the inputs", fingerprint, held="parameters and data")
+    note = shared_cores_note(cluster)
+    if note and cluster.is_writer:
+        print(f"basinview run: warning: {note}", file=sys.stderr, flush=True)
     tag = f"process {cluster.process_id} of {cluster.process_count}"
     print(f"basinview run: {tag}, {len(jax.local_devices())} device(s) here, "
           f"{len(jax.devices())} in all", flush=True)  # fmt: skip

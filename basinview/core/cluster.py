@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import socket
 from collections.abc import Callable, Mapping
 from typing import Any, NamedTuple, TypeVar
 
@@ -43,6 +44,8 @@ __all__ = [
     "barrier",
     "cluster_from_env",
     "gather_rows",
+    "shared_cores",
+    "shared_cores_note",
     "start_cluster",
     "unit_share",
 ]
@@ -284,6 +287,83 @@ def unit_share(units: int, cluster: Cluster) -> tuple[int, int]:
     p = cluster.process_id
     lo = p * base + min(p, extra)
     return lo, lo + base + (1 if p < extra else 0)
+
+
+_MASK_CORES = 1024  # cores described per process (an affinity mask of 128 bytes)
+
+
+def _placement() -> np.ndarray:
+    """This process's host (8 bytes of a digest of its name) and allowed cores (a bit mask)."""
+    host = hashlib.sha256(socket.gethostname().encode("utf-8")).digest()[:8]
+    try:
+        cores = os.sched_getaffinity(0)
+    except (AttributeError, OSError):  # no affinity on this platform: all cores
+        cores = set(range(os.cpu_count() or 1))
+    bits = np.zeros(_MASK_CORES, np.uint8)
+    bits[[c for c in cores if c < _MASK_CORES]] = 1
+    return np.concatenate([np.frombuffer(host, np.uint8), np.packbits(bits)])
+
+
+def shared_cores(placements: np.ndarray) -> list[list[int]]:
+    """Groups of processes on one host whose allowed cores overlap (pure; see below).
+
+    ``placements`` has one row per process: 8 bytes naming its host, then a
+    packed bit mask of the cores it may run on (what :func:`_placement`
+    returns). Each group lists the processes (in order) of one host that
+    share a core with another process of the group; hosts where every
+    process has cores of its own give no group.
+
+    >>> host = np.zeros(8, np.uint8)
+    >>> mask = lambda *cores: np.packbits(np.isin(np.arange(1024), cores).astype(np.uint8))
+    >>> rows = np.stack([np.concatenate([host, mask(0, 1)]), np.concatenate([host, mask(1)])])
+    >>> shared_cores(rows)
+    [[0, 1]]
+    >>> rows = np.stack([np.concatenate([host, mask(0)]), np.concatenate([host, mask(1)])])
+    >>> shared_cores(rows)
+    []
+    """
+    rows = np.asarray(placements, np.uint8)
+    hosts = [bytes(r[:8]) for r in rows]
+    masks = np.unpackbits(rows[:, 8:], axis=1).astype(bool)
+    groups = []
+    for host in dict.fromkeys(hosts):
+        members = [p for p, h in enumerate(hosts) if h == host]
+        clash = sorted(
+            {p for p in members for q in members if p != q and np.any(masks[p] & masks[q])}
+        )
+        if clash:
+            groups.append(clash)
+    return groups
+
+
+def shared_cores_note(cluster: Cluster) -> str:
+    """A warning when processes of this run share a machine's cores, else ``""`` (collective).
+
+    One process of one device already spreads its work over every core it
+    may use, so two such processes on one machine compete for the same
+    cores: on a 2-core machine, two unpinned processes ran a basin map at
+    0.96x of one process, two pinned to a core each at 1.71x
+    (``docs/distributed.md``). Every process calls it at the same point.
+    """
+    if cluster.process_count == 1:
+        return ""
+    from jax.experimental import multihost_utils
+
+    mine = _placement()
+    every = _collective(
+        "comparing the processes' cores",
+        lambda: np.asarray(multihost_utils.process_allgather(mine)),
+    )
+    groups = shared_cores(every)
+    if not groups:
+        return ""
+    named = "; ".join("processes " + ", ".join(str(p) for p in g) for g in groups)
+    return (
+        f"{named} run on one machine and may use the same cores, so they compete for them "
+        "(each process already uses every core it may). Give each process its own cores "
+        "(taskset -c 0-7 ... / taskset -c 8-15 ..., or srun --cpu-bind=cores), or on one "
+        "machine run one process with --devices N. See docs/distributed.md."
+    )
 
 
 def digest_of(*parts: Any) -> str:

@@ -97,11 +97,12 @@ def _lanczos(
     seed: int,
     k: int | None = None,
     tol: float = LANCZOS_TOL,
+    smallest: bool = True,
 ) -> tuple[np.ndarray, np.ndarray, int]:
     """Ritz values and vectors by Lanczos (full reorthogonalisation), and the step count.
 
     With ``k`` the iteration stops as soon as the ``k`` largest Ritz values
-    and the smallest one have converged: for a Ritz pair ``(theta_i, y_i)``
+    and (with ``smallest``) the smallest one have converged: for a Ritz pair ``(theta_i, y_i)``
     of the ``m``-step tridiagonal matrix, ``|beta_m s_mi|`` (``s_mi`` the
     last component of its eigenvector) is the residual norm
     ``||H y_i - theta_i y_i||`` and bounds ``theta_i``'s distance to an
@@ -129,7 +130,7 @@ def _lanczos(
             if (
                 k is not None
                 and j + 1 >= k + 1
-                and _converged(alpha[: j + 1], beta[:j], float(b), k, tol)
+                and _converged(alpha[: j + 1], beta[:j], float(b), k, tol, smallest)
             ):
                 m = j + 1
                 break
@@ -141,13 +142,17 @@ def _lanczos(
     return vals, ritz, m
 
 
-def _converged(alpha: np.ndarray, beta: np.ndarray, b: float, k: int, tol: float) -> bool:
-    """Whether the top-``k`` and the smallest Ritz values of ``T`` have residual bounds below tol."""
+def _converged(
+    alpha: np.ndarray, beta: np.ndarray, b: float, k: int, tol: float, smallest: bool = True
+) -> bool:
+    """Whether the top-``k`` (and the smallest) Ritz values of ``T`` have residual bounds below tol."""
     t = np.diag(alpha) + np.diag(beta, 1) + np.diag(beta, -1)
     vals, vecs = np.linalg.eigh(t)
     bounds = np.abs(b * vecs[-1])
     scale = max(float(np.abs(vals).max()), np.finfo(float).tiny)
-    watched = np.r_[np.arange(len(vals) - min(k, len(vals)), len(vals)), 0]
+    watched = np.arange(len(vals) - min(k, len(vals)), len(vals))
+    if smallest:
+        watched = np.r_[watched, 0]
     return bool(np.all(bounds[watched] <= tol * scale))
 
 
@@ -160,6 +165,7 @@ def hessian_spectrum(
     iterations: int | None = None,
     seed: int = 0,
     tol: float = LANCZOS_TOL,
+    smallest: bool = True,
 ) -> Spectrum:
     """Top-``k`` Hessian eigenpairs and the smallest eigenvalue at ``theta``.
 
@@ -177,6 +183,14 @@ def hessian_spectrum(
             says how many Hessian-vector products it used.
         seed: seed of the Lanczos start vector.
         tol: relative residual bound at which Lanczos stops.
+        smallest: whether Lanczos also waits for the smallest Ritz value to
+            converge (the default). With False it stops once the top ``k``
+            have, which in a network's crowded bulk of small eigenvalues can
+            take several times fewer products (on the 26,122-parameter digits
+            network: 20 against 60); ``lambda_min`` is then the smallest Ritz
+            value reached, an upper bound on the smallest eigenvalue (so a
+            negative one still proves negative curvature, but a positive one
+            does not prove a minimum).
 
     References:
         Lanczos, C. (1950). An iteration method for the solution of the eigenvalue
@@ -220,7 +234,7 @@ def hessian_spectrum(
     def matvec(v: np.ndarray) -> np.ndarray:
         return np.asarray(problem.hvp(point, np.asarray(v, dtype)), dtype=np.float64)
 
-    vals, ritz, used = _lanczos(matvec, n, steps, seed, k=k, tol=tol)
+    vals, ritz, used = _lanczos(matvec, n, steps, seed, k=k, tol=tol, smallest=bool(smallest))
     if not np.all(np.isfinite(vals)):
         raise ParameterError(
             "Hessian-vector products are not finite at this point; choose a point where "
