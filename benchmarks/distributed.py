@@ -78,11 +78,19 @@ def _command(out: str, resolution: int, steps: int) -> list[str]:
     ]  # fmt: skip
 
 
-def _pin(core: int | None) -> Any:
-    """A ``preexec_fn`` that keeps the child process (and its threads) on one core."""
+def _pinned(command: list[str], core: int | None) -> list[str]:
+    """``command`` (``python -m basinview ...``) started on one core when ``core`` is given.
+
+    The child sets its own affinity before JAX starts (its threads inherit it); a
+    ``preexec_fn`` would fork this process instead.
+    """
     if core is None:
-        return None
-    return lambda: os.sched_setaffinity(0, {core})
+        return command
+    start = (
+        f"import os, runpy, sys; os.sched_setaffinity(0, {{{core}}}); "
+        "sys.argv[0] = 'basinview'; runpy.run_module('basinview', run_name='__main__')"
+    )
+    return [command[0], "-c", start, *command[3:]]
 
 
 def _run(folder: Path, kind: str, resolution: int, steps: int, tag: str) -> dict[str, Any]:
@@ -108,7 +116,7 @@ def _run(folder: Path, kind: str, resolution: int, steps: int, tag: str) -> dict
     command = _command(out, resolution, steps)
     pipes = {"stdout": subprocess.PIPE, "stderr": subprocess.PIPE, "text": True}
     procs = [
-        subprocess.Popen(command, cwd=folder, env=env, preexec_fn=_pin(core), **pipes)
+        subprocess.Popen(_pinned(command, core), cwd=folder, env=env, **pipes)
         for env, core in zip(envs, cores)
     ]
     for p in procs:

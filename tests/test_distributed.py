@@ -48,6 +48,12 @@ RUN = [
 ]  # fmt: skip
 
 
+PINNED = (
+    "import os, runpy, sys; os.sched_setaffinity(0, {{{core}}}); "
+    "sys.argv[0] = 'basinview'; runpy.run_module('basinview', run_name='__main__')"
+)
+
+
 def _free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -71,14 +77,16 @@ def _launch(
     full = {**os.environ, "PYTHONPATH": str(ROOT), "BASINVIEW_HEARTBEAT_SECONDS": "3", **env}
     for name in ("JAX_NUM_CPU_DEVICES", "XLA_FLAGS"):
         full.pop(name, None)
+    # A pinned process sets its own affinity before JAX starts (a preexec_fn would fork
+    # the multithreaded test process).
+    start = ["-m", "basinview"] if core is None else ["-c", PINNED.format(core=core)]
     return subprocess.Popen(
-        [sys.executable, "-m", "basinview", "run", *RUN, "--out", out, *extra],
+        [sys.executable, *start, "run", *RUN, "--out", out, *extra],
         cwd=folder,
         env=full,
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
         text=True,
-        preexec_fn=None if core is None else (lambda: os.sched_setaffinity(0, {core})),
     )
 
 
