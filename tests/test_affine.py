@@ -243,6 +243,27 @@ def test_plans_read_off_the_program():
     assert uses_affine(rows, 4096, affine=True) and not uses_affine(matrix, 4096, affine=False)
 
 
+def test_a_network_whose_coefficients_outgrow_the_cache_keeps_the_plain_path():
+    # The decision rule of affine_gain_needed, from the quiet-machine measurements in
+    # benchmarks/results_affine.json (2-16-1 tanh network: 1.53x on the affine path with
+    # 200 rows, 0.90x with 2,000): the estimate is the same for both (FLOPs scale with the
+    # rows), but with 2,000 rows the coefficients c0, c1, c2 (375 KB) stream from memory.
+    from benchmarks.workloads import mlp_data, mlp_init, mlp_loss
+    from basinview.core.affine import CACHE_BYTES, affine_gain_needed
+
+    plans = {}
+    for rows in (200, 2000):
+        data = mlp_data(rows)
+        prob = Problem(mlp_loss, jax.tree.map(jnp.asarray, mlp_init(0)), data.x, data.y)
+        plans[rows] = (prob, plane_plan(prob))
+    (small, p_small), (large, p_large) = plans[200], plans[2000]
+    ratio = [p.plain_flops / p.point_cost for p in (p_small, p_large)]
+    assert ratio[0] == pytest.approx(ratio[1], rel=0.01)
+    assert 3 * 4 * p_small.affine_elements < CACHE_BYTES < 3 * 4 * p_large.affine_elements
+    assert affine_gain_needed(p_large) > affine_gain_needed(p_small)
+    assert uses_affine(small, 4096) and not uses_affine(large, 4096)
+
+
 def test_losses_without_a_plan_take_the_plain_path():
     def printing(theta):
         jax.debug.print("t {}", theta[0])

@@ -74,6 +74,10 @@ AFFINE_GAIN = 1.25
 TRANSCENDENTAL_WEIGHT = 8
 """FLOPs one element of a transcendental function counts for in the estimates."""
 SMALL_CONTRACTION = 4
+AFFINE_GAIN_STREAMED = 1.4
+"""The gain required instead of :data:`AFFINE_GAIN` when the coefficients leave the cache."""
+CACHE_BYTES = 256 * 1024
+"""Coefficient bytes (``c0, c1, c2`` of every materialised element) that stay in cache."""
 """A matrix product contracting fewer coordinates is counted as if it contracted this many."""
 _TRANSCENDENTAL = frozenset(
     {"exp", "exp2", "log", "log1p", "expm1", "tanh", "logistic", "sin", "cos", "tan", "erf",
@@ -416,7 +420,9 @@ def affine_wins(plan: PlanePlan | None, points_per_call: int) -> bool:
     costs ``4 x affine_elements`` (two multiply-adds per materialised
     element) plus ``point_flops``, and ``plane_flops / points_per_call``
     for the once-per-call part. The affine path is taken when the plain
-    estimate is at least :data:`AFFINE_GAIN` times the affine one.
+    estimate is at least :data:`AFFINE_GAIN` times the affine one
+    (:data:`AFFINE_GAIN_STREAMED` when the coefficients outgrow the cache:
+    :func:`affine_gain_needed`).
 
     The weights were set from measurements on a 2-core CPU (see
     ``benchmarks/affine.py``): transcendental functions cost the same on
@@ -427,8 +433,9 @@ def affine_wins(plan: PlanePlan | None, points_per_call: int) -> bool:
     (:data:`SMALL_CONTRACTION`). With these, a straight-line regression
     in the ``X @ theta`` form and a logistic regression take the affine
     path, and so do tanh networks whose first layer's output is not small
-    next to the rest of the work (the 2-16-1 network of ``benchmarks/``:
-    estimate 1.35, measured 1.1-1.9x); the same regression written per row
+    next to the rest of the work while their coefficients fit in cache (the
+    2-16-1 network of ``benchmarks/`` on 200 rows: estimate 1.35, measured
+    1.5x; on 2,000 rows it keeps the plain path); the same regression written per row
     (``t0 + t1 * x``: one multiply-add per row either way; estimate 0.8,
     measured 0.9x) keeps the plain one.
     """
@@ -436,4 +443,21 @@ def affine_wins(plan: PlanePlan | None, points_per_call: int) -> bool:
         return False
     affine = plan.point_cost + plan.plane_flops / max(points_per_call, 1)
     plain = plan.plain_flops
-    return bool(plain >= AFFINE_GAIN * affine)
+    return bool(plain >= affine_gain_needed(plan) * affine)
+
+
+def affine_gain_needed(plan: PlanePlan, itemsize: int = 4) -> float:
+    """:data:`AFFINE_GAIN`, or :data:`AFFINE_GAIN_STREAMED` when the coefficients leave the cache.
+
+    Every grid point reads the three coefficient arrays of each materialised
+    element; once they outgrow :data:`CACHE_BYTES`, those reads stream from
+    memory, which the FLOP estimate does not see. Measured on the 2-core VM
+    (``python -m benchmarks.affine`` and ``benchmarks.digits_mlp``, quiet
+    machine): the 2-16-1 network (estimate 1.35) ran 1.53x on the affine
+    path with 200 rows (38 KB of coefficients) and 0.90x with 2,000 rows
+    (375 KB); the 64-128-128-10 digits network (estimate 1.42, 2.9 MB)
+    1.05x; the straight line in the ``X @ theta`` form (estimate 1.99,
+    1.2 MB) 3.6x. Five points set this threshold, not a model of the cache.
+    """
+    streamed = 3 * plan.affine_elements * itemsize > CACHE_BYTES
+    return AFFINE_GAIN_STREAMED if streamed else AFFINE_GAIN
