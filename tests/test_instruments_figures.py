@@ -140,3 +140,32 @@ def test_density_figure_is_on_a_log_axis_with_the_negative_mass(results):
     assert "not a minimum" in notes
     with pytest.raises(core.ParameterError, match="floor"):
         F.density_figure(density, floor=0.0)
+
+
+def test_sharpness_axis_fits_the_estimates_when_thresholds_are_far_above():
+    # A slow rate's threshold (2/lr) can be hundreds of times the sharpness: drawn on one
+    # linear axis, every curve would sit on the floor. The axis then fits the estimates
+    # and the note says where the thresholds are; log_y keeps them all.
+    # Source: the threshold 2/lr of gradient descent (common practice)
+    from basinview.core import Problem, descend
+    from basinview.figures import sharpness_figure
+
+    prob = Problem(lambda t: 0.5 * (3.0 * t[0] ** 2 + t[1] ** 2), np.array([1.0, 1.0]))
+    runs = descend(prob, prob.theta0, learning_rate=[0.001, 0.01], steps=50, sharpness_every=10)
+    fig = sharpness_figure(runs)
+    top = np.nanmax(runs.sharpness)
+    assert fig.layout.yaxis.range[1] == pytest.approx(1.12 * top, rel=1e-6)
+    notes = " ".join(a.text for a in fig.layout.annotations)
+    assert "Thresholds above the range: the lowest is 200" in notes
+    logged = sharpness_figure(runs, log_y=True)
+    assert logged.layout.yaxis.type == "log"
+    assert "above the range" not in " ".join(a.text for a in logged.layout.annotations)
+    assert "runs drawn" not in notes  # both runs are drawn
+    many = descend(prob, prob.theta0, learning_rate=list(np.linspace(0.01, 0.5, 14)), steps=20,
+                   sharpness_every=10)  # fmt: skip
+    capped = " ".join(a.text for a in sharpness_figure(many).layout.annotations)
+    assert "12 of 14 runs drawn" in capped
+    # a threshold near the estimates stays on the axis
+    near = sharpness_figure(descend(prob, prob.theta0, learning_rate=0.5, steps=20,
+                                    sharpness_every=10))  # fmt: skip
+    assert near.layout.yaxis.range[1] == pytest.approx(1.12 * 2 / 0.5, rel=1e-6)

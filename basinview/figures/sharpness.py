@@ -28,6 +28,9 @@ __all__ = ["MAX_DRAWN", "sharpness_figure"]
 MAX_DRAWN = 12
 """At most this many runs are drawn (the first ones; the table has them all)."""
 
+FAR_ABOVE = 5.0
+"""Thresholds more than this many times the highest estimate are left off a linear axis."""
+
 _FORMULA = {
     "gradient_descent": "2/lr",
     "momentum": "(2+2β)/lr",
@@ -108,7 +111,8 @@ def sharpness_figure(
     steps = runs.sharpness_steps
     fig = FigureSpec()
     drawn_lines: dict[float, int] = {}
-    top = 0.0
+    top = 0.0  # the highest estimate drawn
+    line_top = 0.0  # the highest threshold drawn
     for i, r in enumerate(int(r) for r in shown):
         colour = category_colour(i)
         live = steps <= runs.stop_step[r]
@@ -165,7 +169,7 @@ def sharpness_figure(
             if key in drawn_lines:
                 continue
             drawn_lines[key] = i
-            top = max(top, threshold)
+            line_top = max(line_top, threshold)
             formula = _FORMULA.get(runs.rule, "threshold")
             fig.add_trace(
                 {
@@ -179,7 +183,12 @@ def sharpness_figure(
                     "uid": uid("sharpness", "threshold", r),
                 }
             )
-    y_title = "preconditioned sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
+    # The axis fits the estimates; thresholds far above them (slow rates: 2/lr is
+    # large) would squash every curve onto the floor, so they stay off the range
+    # and the note says how far up they are.
+    above = not log_y and line_top > FAR_ABOVE * top > 0
+    top = top if above else max(top, line_top)
+    y_title = "sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
     track = runs.config.sharpness if runs.config is not None else None
     every = track.every if track is not None else int(steps[1] - steps[0]) if steps.size > 1 else 1
     sub = (
@@ -194,7 +203,8 @@ def sharpness_figure(
         layout["yaxis"]["range"] = [0, 1.12 * top]
     layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left"})
     layout["margin"]["r"] = 260
-    layout["margin"]["b"] = 120
+    layout["margin"]["b"] = 140
+    layout["height"] = 520
     fig.update_layout(layout)
     add_note(
         fig,
@@ -207,11 +217,27 @@ def sharpness_figure(
         "The threshold is local: a run above it need not diverge.",
         row=1,
     )
+    note_row = 2
+    if len(shown) < len(runs):
+        add_note(
+            fig,
+            f"{len(shown)} of {len(runs)} runs drawn; runs_shown=[...] picks others "
+            "(runs.sharpness_table has them all).",
+            row=note_row,
+        )
+        note_row += 1
+    if above:
+        lowest = min(drawn_lines)
+        add_note(
+            fig,
+            f"Thresholds above the range: the lowest is {_number(lowest)}, "
+            f"{lowest / top:.3g}x the highest estimate (log_y=True shows them).",
+            row=note_row,
+        )
+        note_row += 1
     if (runs.status[shown] == "diverged").any():
-        add_note(fig, "×: a diverged run's last record.", row=2)
-        note_row = 3
-    else:
-        note_row = 2
+        add_note(fig, "×: a diverged run's last record.", row=note_row)
+        note_row += 1
     if runs.config is not None and runs.config.batch_size is not None:
         add_note(fig, "Minibatch steps; sharpness is of the full-data loss.", row=note_row)
     return fig.figure()
