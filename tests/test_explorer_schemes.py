@@ -154,7 +154,7 @@ def test_groups_at_one_loss_suggest_declaring_the_symmetry():
     plain = connect_runs(problem, ends, tolerance=0.05)
     assert len(plain) == 2
     note = same_level_note(plain)
-    assert "same loss" in note and "symmetries" in note
+    assert "same lowest loss" in note and "symmetries" in note
     merged = connect_runs(problem, ends, tolerance=0.05, symmetries=[sign_flip([[0]])])
     assert len(merged) == 1 and same_level_note(merged) == ""
 

@@ -36,6 +36,7 @@ from ..core import (
 )
 from ..core.minima import DIVERGED_LABEL, MAX_STEPS_LABEL
 from ..core.segments import SMALL_CALL
+from ..figures.text import significant
 
 __all__ = [
     "ALL_SCHEMES",
@@ -276,7 +277,8 @@ def same_level_note(solutions: Any, rtol: float = 1e-3) -> str:
     if len(same) < 2:
         return ""
     return (
-        f"{', '.join(same)} end at the same loss: if the model has a symmetry (a periodic "
+        f"{', '.join(same)} reach the same lowest loss ({significant(ref)}; the legend gives "
+        "each group's median): if the model has a symmetry (a periodic "
         "parameter, a sign flip, exchangeable units), declare it with "
         "connect_options={'symmetries': [...]} to merge its copies"
     )

@@ -20,7 +20,7 @@ import plotly.graph_objects as go
 from ..core.errors import ParameterError
 from ..core.runs import Runs
 from ..core.sharpness import sharpness_threshold
-from .build import FigureSpec
+from .build import FigureSpec, wrap_lines
 from .style import add_note, base_layout, category_colour, uid
 
 __all__ = ["MAX_DRAWN", "sharpness_figure"]
@@ -52,6 +52,11 @@ def _label(runs: Runs, r: int) -> str:
     if len(np.unique(runs.start_index)) > 1:
         parts.append(f"start {int(runs.start_index[r])}")
     return ", ".join(parts)
+
+
+def _rate_label(runs: Runs, r: int) -> str:
+    """A threshold's legend label: the hyper-parameters it depends on (not the start)."""
+    return _label(runs, r).split(", start ")[0]
 
 
 def sharpness_figure(
@@ -178,7 +183,7 @@ def sharpness_figure(
                     "y": [threshold, threshold],
                     "mode": "lines",
                     "line": {"color": colour, "width": 1.5, "dash": "dash"},
-                    "name": f"{formula} = {_number(threshold)} ({name})",
+                    "name": f"threshold {_number(threshold)} ({_rate_label(runs, r)})",
                     "hovertemplate": f"stability threshold {formula} = {threshold:.5g}<extra></extra>",
                     "uid": uid("sharpness", "threshold", r),
                 }
@@ -191,9 +196,10 @@ def sharpness_figure(
     y_title = "sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
     track = runs.config.sharpness if runs.config is not None else None
     every = track.every if track is not None else int(steps[1] - steps[0]) if steps.size > 1 else 1
-    sub = (
-        f"{runs.rule}; estimated every {every} steps inside the runs; dashed: each rate's threshold"
-    )
+    formula = _FORMULA.get(runs.rule, "threshold")
+    sub = f"{runs.rule}; estimated every {every} steps inside the runs; dashed: threshold {formula}"
+    if not drawn_lines:
+        sub = f"{runs.rule}; estimated every {every} steps inside the runs"
     layout = base_layout(title or "Sharpness along the runs", sub)
     layout["xaxis"] = {"title": {"text": "step"}}
     layout["yaxis"] = {"title": {"text": y_title}, "rangemode": "tozero"}
@@ -201,43 +207,35 @@ def sharpness_figure(
         layout["yaxis"] = {"title": {"text": y_title}, "type": "log"}
     elif top > 0:
         layout["yaxis"]["range"] = [0, 1.12 * top]
-    layout["legend"].update({"x": 1.02, "y": 1, "xanchor": "left"})
-    layout["margin"]["r"] = 260
-    layout["margin"]["b"] = 140
-    layout["height"] = 520
-    fig.update_layout(layout)
-    add_note(
-        fig,
+    # the legend keeps its own part of the figure at any width (a notebook output
+    # 580 px wide put it over the curves when it sat in the right margin)
+    layout["xaxis"]["domain"] = [0.0, 0.6]
+    layout["legend"].update({"x": 0.63, "y": 1, "xanchor": "left"})
+    notes = [
         "A curve that climbs to its dashed line and stays there is at the edge of stability: "
         "the step cannot settle where the loss is sharper.",
-    )
-    add_note(
-        fig,
         "Warm-started Lanczos estimates (lower bounds; they can lag when eigenvalues cross). "
         "The threshold is local: a run above it need not diverge.",
-        row=1,
-    )
-    note_row = 2
+    ]
     if len(shown) < len(runs):
-        add_note(
-            fig,
+        notes.append(
             f"{len(shown)} of {len(runs)} runs drawn; runs_shown=[...] picks others "
-            "(runs.sharpness_table has them all).",
-            row=note_row,
+            "(runs.sharpness_table has them all)."
         )
-        note_row += 1
     if above:
         lowest = min(drawn_lines)
-        add_note(
-            fig,
+        notes.append(
             f"Thresholds above the range: the lowest is {_number(lowest)}, "
-            f"{lowest / top:.3g}x the highest estimate (log_y=True shows them).",
-            row=note_row,
+            f"{lowest / top:.3g}x the highest estimate (log_y=True shows them)."
         )
-        note_row += 1
     if (runs.status[shown] == "diverged").any():
-        add_note(fig, "×: a diverged run's last record.", row=note_row)
-        note_row += 1
+        notes.append("×: a diverged run's last record.")
     if runs.config is not None and runs.config.batch_size is not None:
-        add_note(fig, "Minibatch steps; sharpness is of the full-data loss.", row=note_row)
+        notes.append("Minibatch steps; sharpness is of the full-data loss.")
+    lines = [line for note in notes for line in wrap_lines(note)]  # none runs off the figure
+    layout["margin"]["b"] = 80 + 17 * len(lines)
+    layout["height"] = 400 + 17 * len(lines)
+    fig.update_layout(layout)
+    for row, line in enumerate(lines):
+        add_note(fig, line, row=row)
     return fig.figure()
