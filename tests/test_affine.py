@@ -248,8 +248,8 @@ def test_a_network_whose_coefficients_outgrow_the_cache_keeps_the_plain_path():
     # benchmarks/results_affine.json (2-16-1 tanh network: 1.53x on the affine path with
     # 200 rows, 0.90x with 2,000): the estimate is the same for both (FLOPs scale with the
     # rows), but with 2,000 rows the coefficients c0, c1, c2 (375 KB) stream from memory.
-    from benchmarks.workloads import mlp_data, mlp_init, mlp_loss
     from basinview.core.affine import CACHE_BYTES, affine_gain_needed
+    from benchmarks.workloads import mlp_data, mlp_init, mlp_loss
 
     plans = {}
     for rows in (200, 2000):
