@@ -224,7 +224,9 @@ def _lanczos_unrolled(
     dtype = q0.dtype
     eps = jnp.finfo(dtype).eps
     tiny = jnp.finfo(dtype).tiny
-    qs, alphas, betas = [q0], [], []
+    qs: list[jax.Array] = [q0]
+    alphas: list[jax.Array] = []
+    betas: list[jax.Array] = []
     alive = jnp.array(True)
     for j in range(m):
         q = qs[j]
