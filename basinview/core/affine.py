@@ -74,11 +74,11 @@ AFFINE_GAIN = 1.25
 TRANSCENDENTAL_WEIGHT = 8
 """FLOPs one element of a transcendental function counts for in the estimates."""
 SMALL_CONTRACTION = 4
+"""A matrix product contracting fewer coordinates is counted as if it contracted this many."""
 AFFINE_GAIN_STREAMED = 1.4
 """The gain required instead of :data:`AFFINE_GAIN` when the coefficients leave the cache."""
 CACHE_BYTES = 256 * 1024
 """Coefficient bytes (``c0, c1, c2`` of every materialised element) that stay in cache."""
-"""A matrix product contracting fewer coordinates is counted as if it contracted this many."""
 _TRANSCENDENTAL = frozenset(
     {"exp", "exp2", "log", "log1p", "expm1", "tanh", "logistic", "sin", "cos", "tan", "erf",
      "erfc", "erf_inv", "lgamma", "digamma", "pow", "sqrt", "rsqrt", "cbrt", "atan2", "asin",

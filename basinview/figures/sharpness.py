@@ -44,19 +44,15 @@ def _number(x: float) -> str:
     return f"{x:,.0f}" if abs(x) >= 1000 else f"{x:.4g}"
 
 
-def _label(runs: Runs, r: int) -> str:
+def _label(runs: Runs, r: int, *, start: bool = True) -> str:
+    """Run ``r``'s hyper-parameters that vary, and its start (a threshold's label omits it)."""
     parts = [f"lr {float(runs.hyper['learning_rate'][r]):.3g}"]
     for name, values in runs.hyper.items():
         if name != "learning_rate" and len(np.unique(values)) > 1:
             parts.append(f"{name} {float(values[r]):.3g}")
-    if len(np.unique(runs.start_index)) > 1:
+    if start and len(np.unique(runs.start_index)) > 1:
         parts.append(f"start {int(runs.start_index[r])}")
     return ", ".join(parts)
-
-
-def _rate_label(runs: Runs, r: int) -> str:
-    """A threshold's legend label: the hyper-parameters it depends on (not the start)."""
-    return _label(runs, r).split(", start ")[0]
 
 
 def sharpness_figure(
@@ -114,6 +110,7 @@ def sharpness_figure(
             f"runs_shown must list run numbers from 0 to {len(runs) - 1}; got {runs_shown!r}."
         )
     steps = runs.sharpness_steps
+    formula = _FORMULA.get(runs.rule, "threshold")
     fig = FigureSpec()
     drawn_lines: dict[float, int] = {}
     top = 0.0  # the highest estimate drawn
@@ -175,7 +172,6 @@ def sharpness_figure(
                 continue
             drawn_lines[key] = i
             line_top = max(line_top, threshold)
-            formula = _FORMULA.get(runs.rule, "threshold")
             fig.add_trace(
                 {
                     "type": "scatter",
@@ -183,7 +179,7 @@ def sharpness_figure(
                     "y": [threshold, threshold],
                     "mode": "lines",
                     "line": {"color": colour, "width": 1.5, "dash": "dash"},
-                    "name": f"threshold {_number(threshold)} ({_rate_label(runs, r)})",
+                    "name": f"threshold {_number(threshold)} ({_label(runs, r, start=False)})",
                     "hovertemplate": f"stability threshold {formula} = {threshold:.5g}<extra></extra>",
                     "uid": uid("sharpness", "threshold", r),
                 }
@@ -196,7 +192,6 @@ def sharpness_figure(
     y_title = "sharpness λmax(P⁻¹H)" if use_pre else "sharpness λmax(H)"
     track = runs.config.sharpness if runs.config is not None else None
     every = track.every if track is not None else int(steps[1] - steps[0]) if steps.size > 1 else 1
-    formula = _FORMULA.get(runs.rule, "threshold")
     sub = f"{runs.rule}; estimated every {every} steps inside the runs; dashed: threshold {formula}"
     if not drawn_lines:
         sub = f"{runs.rule}; estimated every {every} steps inside the runs"
